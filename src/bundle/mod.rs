@@ -15,6 +15,7 @@ use serde::{Deserialize, Serialize};
 
 pub use format::FormatError;
 
+pub use crate::report::{BandSummary, Claims, DomainSummary, YRandomization};
 use crate::scoring::{ModelInfo, ScoringModel};
 use crate::validate::Estimate;
 
@@ -36,7 +37,8 @@ pub enum Error {
     Inconsistent { path: PathBuf, reason: String },
 }
 
-/// What the fit claimed and how it was made: the model card.
+/// What the fit claimed and how it was made: the model card. It reuses the
+/// report's types, so the card and the report cannot disagree.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Card {
     pub target_column: String,
@@ -45,9 +47,10 @@ pub struct Card {
     pub claims: Claims,
     /// The same procedure with random folds: the optimism a random split hides.
     pub random_split: Claims,
-    pub y_randomization: YRandomizationCard,
-    pub domain: DomainCard,
-    pub conformal: ConformalCard,
+    pub y_randomization: YRandomization,
+    pub domain: DomainSummary,
+    pub conformal_method: String,
+    pub conformal_bands: Vec<BandSummary>,
     pub training_rows: usize,
     pub dropped_constant: Vec<String>,
     pub data_sha256: String,
@@ -58,16 +61,6 @@ pub struct Card {
     pub created_at: String,
     pub tool_version: String,
     pub cautions: Vec<String>,
-}
-
-#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
-pub struct Claims {
-    pub mse: Estimate,
-    pub rmse: Estimate,
-    pub mae: Estimate,
-    pub r2: Estimate,
-    pub pearson: Estimate,
-    pub spearman: Estimate,
 }
 
 impl Claims {
@@ -90,37 +83,6 @@ impl Card {
     pub fn claims_map(&self) -> BTreeMap<String, Estimate> {
         self.claims.as_map()
     }
-}
-
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-pub struct YRandomizationCard {
-    pub permutations: usize,
-    pub real_q2: f64,
-    pub p_value: f64,
-}
-
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-pub struct DomainCard {
-    pub k: usize,
-    pub components: usize,
-    pub explained_variance: f64,
-    pub z: f64,
-    pub z_threshold: f64,
-    pub leverage_warning: f64,
-    pub leverage_meaningful: bool,
-    pub residual_border_limit: f64,
-    pub residual_outside_limit: f64,
-    pub typicality_border: f64,
-    pub typicality_outside: f64,
-    pub oof_verdict_counts: BTreeMap<String, usize>,
-}
-
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-pub struct ConformalCard {
-    pub method: String,
-    pub min_band: usize,
-    /// Per verdict: calibration points and whether the band is used.
-    pub bands: Vec<(String, usize, bool)>,
 }
 
 /// The manifest: everything but the large arrays.

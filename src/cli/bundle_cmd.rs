@@ -79,13 +79,18 @@ pub fn model_card(b: &Bundle) -> String {
     let _ = writeln!(s, "  PCA residual    border > {:.3}, outside > {:.3}", d.residual_border_limit, d.residual_outside_limit);
     let counts: Vec<String> = d.oof_verdict_counts.iter().map(|(k, v)| format!("{k} {v}")).collect();
     let _ = writeln!(s, "  out-of-fold     {}", counts.join(", "));
-    let c = &card.conformal;
-    let bands: Vec<String> = c
-        .bands
+    let bands: Vec<String> = card
+        .conformal_bands
         .iter()
-        .map(|(v, n, used)| format!("{v} {n}{}", if *used { "" } else { " (pooled)" }))
+        .map(|b| format!("{} {}{}", b.verdict, b.n, if b.used { "" } else { " (pooled)" }))
         .collect();
-    let _ = writeln!(s, "\nintervals   {}, default confidence {}, bands: {}", c.method, info.default_confidence, bands.join(", "));
+    let _ = writeln!(
+        s,
+        "\nintervals   {}, default confidence {}, bands: {}",
+        card.conformal_method,
+        info.default_confidence,
+        bands.join(", ")
+    );
     let _ = writeln!(s, "created     {} by plumbline {}", card.created_at, card.tool_version);
     let _ = writeln!(s, "\ncautions");
     for caution in &card.cautions {
