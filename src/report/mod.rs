@@ -13,11 +13,17 @@
 //!   [`Curve::chosen`] meaningful on every curve.
 //! - Verdict names and band names are those of [`Verdict::name`].
 //! - A metric that is undefined (a correlation of constant predictions, an
-//!   SE from a single fold) is NaN in memory and `null` in the JSON.
+//!   SE from a single fold) is NaN in memory and `null` in the JSON (as
+//!   serde_json writes every non-finite number); the metric fields read
+//!   `null` back as NaN, so a report always round-trips.
+
+pub mod html;
+pub mod svg;
 
 use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
 
-use serde::{Deserialize, Serialize};
+use serde::{Deserialize, Deserializer, Serialize};
 
 use crate::domain::Verdict;
 use crate::models::Hyper;
@@ -108,12 +114,18 @@ pub struct FamilyOutcome {
 /// Outer-CV metrics, each as mean ± SE over outer folds.
 #[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Claims {
+    #[serde(deserialize_with = "nullable::estimate")]
     pub mse: Estimate,
+    #[serde(deserialize_with = "nullable::estimate")]
     pub rmse: Estimate,
+    #[serde(deserialize_with = "nullable::estimate")]
     pub mae: Estimate,
     /// q² when out-of-fold.
+    #[serde(deserialize_with = "nullable::estimate")]
     pub r2: Estimate,
+    #[serde(deserialize_with = "nullable::estimate")]
     pub pearson: Estimate,
+    #[serde(deserialize_with = "nullable::estimate")]
     pub spearman: Estimate,
 }
 
@@ -135,7 +147,9 @@ pub struct CurvePoint {
     pub hyper: Hyper,
     /// The value of [`Curve::parameter`] at this point.
     pub x: f64,
+    #[serde(deserialize_with = "nullable::estimate")]
     pub train_mse: Estimate,
+    #[serde(deserialize_with = "nullable::estimate")]
     pub test_mse: Estimate,
 }
 
@@ -157,7 +171,9 @@ pub struct OofPoint {
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct YRandomization {
     pub permutations: usize,
+    #[serde(deserialize_with = "nullable::f64")]
     pub real_q2: f64,
+    #[serde(deserialize_with = "nullable::vec")]
     pub permuted_q2: Vec<f64>,
     /// (1 + #{permuted q² ≥ real q²}) / (permutations + 1).
     pub p_value: f64,
@@ -213,6 +229,8 @@ pub struct BandSummary {
 #[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
 pub struct CoveragePoint {
     pub nominal: f64,
+    /// NaN when no point was measured.
+    #[serde(deserialize_with = "nullable::f64")]
     pub empirical: f64,
     /// Points the coverage was measured on.
     pub n: usize,
@@ -232,3 +250,83 @@ pub const GENERAL_CAUTIONS: [&str; 4] = [
     "Confirm every promising candidate in the lab.",
     "Follow local practice and regulations.",
 ];
+
+/// Reading back the `null` that serde_json writes for a non-finite number.
+mod nullable {
+    use super::*;
+
+    pub fn f64<'de, D: Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
+        Ok(Option::<f64>::deserialize(d)?.unwrap_or(f64::NAN))
+    }
+
+    pub fn vec<'de, D: Deserializer<'de>>(d: D) -> Result<Vec<f64>, D::Error> {
+        let values = Vec::<Option<f64>>::deserialize(d)?;
+        Ok(values.into_iter().map(|v| v.unwrap_or(f64::NAN)).collect())
+    }
+
+    /// Mirrors the serde shape of [`Estimate`].
+    #[derive(Deserialize)]
+    struct RawEstimate {
+        mean: Option<f64>,
+        se: Option<f64>,
+    }
+
+    pub fn estimate<'de, D: Deserializer<'de>>(d: D) -> Result<Estimate, D::Error> {
+        let raw = RawEstimate::deserialize(d)?;
+        Ok(Estimate {
+            mean: raw.mean.unwrap_or(f64::NAN),
+            se: raw.se.unwrap_or(f64::NAN),
+        })
+    }
+}
+
+/// Errors writing a report.
+#[derive(Debug, thiserror::Error)]
+pub enum Error {
+    #[error(
+        "cannot create the report directory {dir}: {source}; check the path given to --report \
+         and that it is writable"
+    )]
+    CreateDir {
+        dir: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("cannot write the report file {path}: {source}; check free space and permissions")]
+    Write {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("cannot encode the report as JSON: {source}")]
+    Json {
+        #[source]
+        source: serde_json::Error,
+    },
+}
+
+/// Writes `report.json` (pretty-printed) and `report.html` into `dir`,
+/// creating it if needed. Each file is written beside its final name and
+/// renamed into place, so a reader never sees half a report.
+pub fn write(report: &FitReport, dir: &Path) -> Result<(), Error> {
+    std::fs::create_dir_all(dir).map_err(|source| Error::CreateDir {
+        dir: dir.to_path_buf(),
+        source,
+    })?;
+    let mut json = serde_json::to_string_pretty(report).map_err(|source| Error::Json { source })?;
+    json.push('\n');
+    write_replacing(&dir.join("report.json"), json.as_bytes())?;
+    write_replacing(&dir.join("report.html"), html::render(report).as_bytes())
+}
+
+fn write_replacing(path: &Path, bytes: &[u8]) -> Result<(), Error> {
+    let mut tmp = path.as_os_str().to_owned();
+    tmp.push(".tmp");
+    let tmp = PathBuf::from(tmp);
+    let fail = |source| Error::Write {
+        path: path.to_path_buf(),
+        source,
+    };
+    std::fs::write(&tmp, bytes).map_err(fail)?;
+    std::fs::rename(&tmp, path).map_err(fail)
+}
