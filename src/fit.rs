@@ -24,7 +24,7 @@ use std::collections::BTreeMap;
 use std::fmt::Write as _;
 use std::time::Instant;
 
-use ndarray::{Array2, ArrayView1, Axis};
+use ndarray::{Array2, ArrayView1};
 
 use crate::bundle::Card;
 use crate::conformal::CvPlus;
@@ -56,6 +56,8 @@ pub enum Error {
     Validate(#[from] validate::Error),
     #[error(transparent)]
     Domain(#[from] crate::domain::Error),
+    #[error(transparent)]
+    Conformal(#[from] crate::conformal::Error),
 }
 
 /// How rows are split into folds.
@@ -202,7 +204,7 @@ pub fn fit(
         options.min_band,
     )?;
     watch.lap("fold models, domain, calibration");
-    let coverage = nested_coverage(&validation, y.view());
+    let coverage = nested_coverage(&validation, y.view())?;
     watch.lap("coverage check");
 
     let info = ModelInfo {
@@ -248,31 +250,21 @@ fn fold_design(table: &Table, options: &FitOptions) -> Result<FoldDesign, Error>
 /// Honest empirical coverage: in each outer fold, CV+ intervals from the
 /// inner fold models (at the inner-chosen setting) and their inner
 /// out-of-fold residuals, evaluated on the outer-test rows that took no
-/// part in any of it.
-fn nested_coverage(validation: &Validation, y: ArrayView1<f64>) -> Vec<report::CoveragePoint> {
-    let chosen = validation.chosen();
-    COVERAGE_LEVELS
-        .iter()
-        .map(|&nominal| {
-            let (mut covered, mut total) = (0usize, 0usize);
-            for outer in &chosen.outer {
-                let residuals: Vec<f64> = outer.inner_residuals.iter().map(|r| r.abs()).collect();
-                let verdicts = vec![Verdict::Inside; residuals.len()];
-                // Pooled calibration: the inner rows have no domain verdicts.
-                let cv = CvPlus::new(&outer.inner_folds.fold_of, outer.inner_folds.k, &residuals, &verdicts, usize::MAX);
-                for (j, &row) in outer.test_rows.iter().enumerate() {
-                    let preds = outer.inner_test_predictions.row(j).to_vec();
-                    let iv = cv.interval(&preds, nominal, Verdict::Inside);
-                    let yv = y[row];
-                    total += 1;
-                    if iv.lower.is_none_or(|l| yv >= l) && iv.upper.is_none_or(|u| yv <= u) {
-                        covered += 1;
-                    }
-                }
-            }
-            report::CoveragePoint { nominal, empirical: covered as f64 / total.max(1) as f64, n: total }
-        })
-        .collect()
+/// part in any of it. Pooled calibration: inner rows carry no verdicts.
+fn nested_coverage(validation: &Validation, y: ArrayView1<f64>) -> Result<Vec<report::CoveragePoint>, Error> {
+    let mut parts = Vec::new();
+    for outer in &validation.chosen().outer {
+        let residuals: Vec<f64> = outer.inner_residuals.iter().map(|r| r.abs()).collect();
+        let verdicts = vec![Verdict::Inside; residuals.len()];
+        let cv = CvPlus::new(&outer.inner_folds.fold_of, outer.inner_folds.k, &residuals, &verdicts, usize::MAX)?;
+        let observed: Vec<f64> = outer.test_rows.iter().map(|&r| y[r]).collect();
+        let test_verdicts = vec![Verdict::Inside; observed.len()];
+        parts.push(cv.empirical_coverage(outer.inner_test_predictions.view(), &observed, &test_verdicts, &COVERAGE_LEVELS)?);
+    }
+    Ok(crate::conformal::Coverage::pool(&parts)
+        .into_iter()
+        .map(|c| report::CoveragePoint { nominal: c.nominal, empirical: c.empirical, n: c.n })
+        .collect())
 }
 
 /// The cautions every card and report carries.
@@ -309,7 +301,7 @@ pub fn assemble(
     hyper: &Hyper,
     domain_settings: &DomainSettings,
     min_band: usize,
-) -> Result<Assembled, crate::domain::Error> {
+) -> Result<Assembled, Error> {
     let predictor = models::fit_predictor(hyper, x_std, y, membership(folds).view());
     // The residuals come from the very fold models that will serve, so the
     // calibration is exactly what a query meets.
@@ -319,7 +311,7 @@ pub fn assemble(
     let guard = DomainGuard::fit(x_std, x_raw, domain_settings)?;
     let oof_signals = crate::domain::out_of_fold(x_std, x_raw, folds, domain_settings)?;
     let verdicts: Vec<Verdict> = oof_signals.iter().map(|s| s.verdict).collect();
-    let cvplus = CvPlus::new(&folds.fold_of, folds.k, &residuals, &verdicts, min_band);
+    let cvplus = CvPlus::new(&folds.fold_of, folds.k, &residuals, &verdicts, min_band)?;
     Ok(Assembled { predictor, residuals, oof_predictions, guard, oof_signals, cvplus })
 }
 
@@ -433,7 +425,7 @@ fn build_report(
         domain: report::DomainSummary {
             k: ds.k,
             components: guard.pca().n_components(),
-            explained_variance: guard.pca().explained_variance_fraction(),
+            explained_variance: guard.pca().explained_variance(),
             z: ds.z,
             z_threshold: th.z_threshold,
             leverage_warning: th.leverage_warning,
@@ -451,7 +443,11 @@ fn build_report(
                 .cvplus
                 .band_sizes()
                 .into_iter()
-                .map(|(v, n, used)| report::BandSummary { verdict: v.name().to_string(), n, used })
+                .map(|(v, n)| report::BandSummary {
+                    verdict: v.name().to_string(),
+                    n,
+                    used: assembled.cvplus.band_used(v, options.default_confidence),
+                })
                 .collect(),
             coverage,
         },

@@ -8,9 +8,12 @@ use serde_json::json;
 
 use super::format::{Array, Elements, Sections};
 use super::{Bundle, Card, Manifest};
+use crate::conformal::{CvPlus, CvPlusState};
+use crate::domain::{DomainGuard, DomainState, Verdict};
 use crate::models::Predictor;
 use crate::scoring::{ModelInfo, ScoringModel};
 use crate::space::Standardizer;
+use crate::space::pca::Pca;
 
 /// What was wrong with decoded sections.
 pub(super) enum Problem {
@@ -76,8 +79,8 @@ pub(super) fn to_sections(model: &ScoringModel, info: &ModelInfo, card: &Card, t
     put1(&mut arrays, "standardizer.scale", &model.standardizer.scale);
     put1(&mut arrays, "training.y", &Array1::from(training_y.to_vec()));
     components.insert("predictor".to_string(), save_predictor(&model.predictor, &mut arrays));
-    components.insert("domain".to_string(), crate::domain::persist::save(&model.domain, &mut arrays));
-    components.insert("conformal".to_string(), crate::conformal::persist::save(&model.cvplus, &mut arrays));
+    components.insert("domain".to_string(), save_domain(&model.domain, &mut arrays));
+    components.insert("conformal".to_string(), save_cvplus(&model.cvplus, &mut arrays));
     let manifest = Manifest { info: info.clone(), card: card.clone(), training_ids: training_ids.to_vec(), components };
     Sections { manifest: serde_json::to_vec_pretty(&manifest).expect("manifest serialises"), arrays }
 }
@@ -95,8 +98,10 @@ pub(super) fn from_sections(sections: &Sections) -> Result<Bundle, Problem> {
     expect(training_y.len() == n, || format!("{} training targets for {n} training ids", training_y.len()))?;
     let component = |name: &str| manifest.components.get(name).ok_or_else(|| Problem::Manifest(format!("component '{name}' is missing")));
     let predictor = load_predictor(component("predictor")?, arrays, p)?;
-    let domain = crate::domain::persist::load(component("domain")?, arrays, p).map_err(Problem::Inconsistent)?;
-    let cvplus = crate::conformal::persist::load(component("conformal")?, arrays).map_err(Problem::Inconsistent)?;
+    let domain = load_domain(component("domain")?, arrays)?;
+    let cvplus = load_cvplus(component("conformal")?, arrays)?;
+    expect(domain.n_descriptors() == p, || format!("the domain guard has {} descriptors, the bundle lists {p}", domain.n_descriptors()))?;
+    expect(cvplus.n() == n, || format!("{} calibration residuals for {n} training rows", cvplus.n()))?;
     let model = ScoringModel { info: manifest.info.clone(), standardizer, predictor, cvplus, domain };
     Ok(Bundle { manifest, model, training_y })
 }
@@ -157,4 +162,99 @@ fn load_predictor(meta: &serde_json::Value, arrays: &Arrays, p: usize) -> Result
         other => return Err(Problem::Manifest(format!("unknown predictor kind '{other}'"))),
     };
     Ok(predictor)
+}
+
+fn put_u32(arrays: &mut Arrays, name: &str, v: impl Iterator<Item = u32>) {
+    let v: Vec<u32> = v.collect();
+    arrays.insert(name.into(), Array { shape: vec![v.len()], elements: Elements::U32(v) });
+}
+
+fn get_u32<'a>(arrays: &'a Arrays, name: &str) -> Result<&'a [u32], Problem> {
+    match arrays.get(name).map(|a| &a.elements) {
+        Some(Elements::U32(v)) => Ok(v),
+        Some(_) => Err(Problem::Inconsistent(format!("array '{name}' should be a u32 array"))),
+        None => Err(missing(name)),
+    }
+}
+
+fn verdict_code(v: Verdict) -> u32 {
+    match v {
+        Verdict::Inside => 0,
+        Verdict::Border => 1,
+        Verdict::Outside => 2,
+    }
+}
+
+fn meta_field<T: serde::de::DeserializeOwned>(meta: &serde_json::Value, key: &str) -> Result<T, Problem> {
+    let v = meta.get(key).ok_or_else(|| Problem::Manifest(format!("'{key}' is missing")))?;
+    serde_json::from_value(v.clone()).map_err(|e| Problem::Manifest(format!("'{key}': {e}")))
+}
+
+fn save_cvplus(c: &CvPlus, arrays: &mut Arrays) -> serde_json::Value {
+    let st = c.state();
+    put_u32(arrays, "conformal.fold_of", st.fold_of.iter().map(|&f| f as u32));
+    put1(arrays, "conformal.residuals", &Array1::from(st.residuals.clone()));
+    put_u32(arrays, "conformal.verdicts", st.verdicts.iter().map(|&v| verdict_code(v)));
+    json!({ "k": st.k, "min_band": st.min_band })
+}
+
+fn load_cvplus(meta: &serde_json::Value, arrays: &Arrays) -> Result<CvPlus, Problem> {
+    let verdicts = get_u32(arrays, "conformal.verdicts")?
+        .iter()
+        .map(|&c| match c {
+            0 => Ok(Verdict::Inside),
+            1 => Ok(Verdict::Border),
+            2 => Ok(Verdict::Outside),
+            other => Err(Problem::Inconsistent(format!("unknown verdict code {other}"))),
+        })
+        .collect::<Result<Vec<_>, _>>()?;
+    let state = CvPlusState {
+        k: meta_field(meta, "k")?,
+        min_band: meta_field(meta, "min_band")?,
+        fold_of: get_u32(arrays, "conformal.fold_of")?.iter().map(|&f| f as usize).collect(),
+        residuals: get1(arrays, "conformal.residuals")?.to_vec(),
+        verdicts,
+    };
+    CvPlus::from_state(state).map_err(|e| Problem::Inconsistent(format!("conformal calibration: {e}")))
+}
+
+fn save_domain(g: &DomainGuard, arrays: &mut Arrays) -> serde_json::Value {
+    let st = g.state();
+    put1(arrays, "domain.pca.mean", &st.pca.mean);
+    put2(arrays, "domain.pca.components", &st.pca.components);
+    put1(arrays, "domain.pca.eigenvalues", &st.pca.eigenvalues);
+    put1(arrays, "domain.pca.explained_variance_ratio", &st.pca.explained_variance_ratio);
+    put2(arrays, "domain.training_scores", &st.training_scores);
+    put1(arrays, "domain.loo_distances", &Array1::from(st.loo_distances.clone()));
+    put1(arrays, "domain.range_min", &Array1::from(st.range_min.clone()));
+    put1(arrays, "domain.range_max", &Array1::from(st.range_max.clone()));
+    json!({
+        "settings": st.settings,
+        "thresholds": st.thresholds,
+        "n": st.n,
+        "pca_total_variance": st.pca.total_variance,
+        "pca_n_samples": st.pca.n_samples,
+    })
+}
+
+fn load_domain(meta: &serde_json::Value, arrays: &Arrays) -> Result<DomainGuard, Problem> {
+    let pca = Pca {
+        mean: get1(arrays, "domain.pca.mean")?,
+        components: get2(arrays, "domain.pca.components")?,
+        eigenvalues: get1(arrays, "domain.pca.eigenvalues")?,
+        explained_variance_ratio: get1(arrays, "domain.pca.explained_variance_ratio")?,
+        total_variance: meta_field(meta, "pca_total_variance")?,
+        n_samples: meta_field(meta, "pca_n_samples")?,
+    };
+    let state = DomainState {
+        settings: meta_field(meta, "settings")?,
+        pca,
+        training_scores: get2(arrays, "domain.training_scores")?,
+        loo_distances: get1(arrays, "domain.loo_distances")?.to_vec(),
+        thresholds: meta_field(meta, "thresholds")?,
+        range_min: get1(arrays, "domain.range_min")?.to_vec(),
+        range_max: get1(arrays, "domain.range_max")?.to_vec(),
+        n: meta_field(meta, "n")?,
+    };
+    DomainGuard::from_state(state).map_err(|e| Problem::Inconsistent(format!("domain guard: {e}")))
 }

@@ -5,6 +5,7 @@
 use std::collections::BTreeMap;
 
 use anyhow::Context;
+use ndarray::ArrayView1;
 use serde::Serialize;
 
 use super::EvaluateArgs;
@@ -44,13 +45,14 @@ pub fn run(args: &EvaluateArgs) -> anyhow::Result<()> {
         anyhow::bail!("{} has no target column '{target}'", args.data.display());
     };
     let scores = model.score(table.x.view(), confidence);
+    let observed = y.to_vec();
     let evaluation = Evaluation {
         model: model.info.id.clone(),
         confidence,
-        overall: realised(y.as_slice().unwrap_or(&y.to_vec()), &scores, None),
+        overall: realised(&observed, &scores, None),
         by_verdict: Verdict::ALL
             .iter()
-            .map(|v| (v.name().to_string(), realised(&y.to_vec(), &scores, Some(*v))))
+            .map(|v| (v.name().to_string(), realised(&observed, &scores, Some(*v))))
             .collect(),
         claims: bundle.manifest.card.claims_map(),
     };
@@ -79,7 +81,7 @@ pub fn realised(y: &[f64], scores: &[CandidateScore], verdict: Option<Verdict>) 
         .count();
     Realised {
         n,
-        metrics: (n >= 2).then(|| crate::validate::metrics(&obs, &preds)),
+        metrics: (n >= 2).then(|| crate::validate::metrics(ArrayView1::from(&obs), ArrayView1::from(&preds))),
         coverage: (n > 0).then(|| covered as f64 / n as f64),
     }
 }
