@@ -189,7 +189,8 @@ pub fn fit(
         compare_random_split: true,
     };
     let grids = options.grids(table.descriptor_names.len());
-    let validation = validate::validate_with_models(x_raw, y.view(), &design, &grids, &settings, progress)?;
+    let validation =
+        validate::validate_with_models(x_raw, y.view(), &design, &grids, &settings, progress)?;
     watch.lap("nested cross-validation");
 
     let selection = &validation.final_selection;
@@ -217,7 +218,15 @@ pub fn fit(
         descriptor_names: table.descriptor_names.clone(),
         default_confidence: options.default_confidence,
     };
-    let report = build_report(table, data_path, options, &validation, &assembled, coverage, &watch);
+    let report = build_report(
+        table,
+        data_path,
+        options,
+        &validation,
+        &assembled,
+        coverage,
+        &watch,
+    );
     let card = build_card(table, options, &validation, &report);
     let model = ScoringModel {
         info,
@@ -226,7 +235,12 @@ pub fn fit(
         cvplus: assembled.cvplus,
         domain: assembled.guard,
     };
-    Ok(FitOutcome { model, card, report, training_y: y.to_vec() })
+    Ok(FitOutcome {
+        model,
+        card,
+        report,
+        training_y: y.to_vec(),
+    })
 }
 
 fn fold_design(table: &Table, options: &FitOptions) -> Result<FoldDesign, Error> {
@@ -234,15 +248,28 @@ fn fold_design(table: &Table, options: &FitOptions) -> Result<FoldDesign, Error>
         SplitSpec::Random => FoldDesign::Random,
         SplitSpec::Cluster => {
             let std = crate::space::Standardizer::fit(table.x.view());
-            FoldDesign::clusters(std.transform(table.x.view()).view(), options.folds, options.seed, None)?
+            FoldDesign::clusters(
+                std.transform(table.x.view()).view(),
+                options.folds,
+                options.seed,
+                None,
+            )?
         }
         SplitSpec::Group(c) => {
-            let groups = table.groups.as_ref().ok_or_else(|| Error::MissingSplitColumn(c.clone()))?;
+            let groups = table
+                .groups
+                .as_ref()
+                .ok_or_else(|| Error::MissingSplitColumn(c.clone()))?;
             FoldDesign::groups(groups)
         }
         SplitSpec::Time(c) => {
-            let times = table.times.as_ref().ok_or_else(|| Error::MissingSplitColumn(c.clone()))?;
-            FoldDesign::Time { times: times.clone() }
+            let times = table
+                .times
+                .as_ref()
+                .ok_or_else(|| Error::MissingSplitColumn(c.clone()))?;
+            FoldDesign::Time {
+                times: times.clone(),
+            }
         }
     })
 }
@@ -251,19 +278,37 @@ fn fold_design(table: &Table, options: &FitOptions) -> Result<FoldDesign, Error>
 /// inner fold models (at the inner-chosen setting) and their inner
 /// out-of-fold residuals, evaluated on the outer-test rows that took no
 /// part in any of it. Pooled calibration: inner rows carry no verdicts.
-fn nested_coverage(validation: &Validation, y: ArrayView1<f64>) -> Result<Vec<report::CoveragePoint>, Error> {
+fn nested_coverage(
+    validation: &Validation,
+    y: ArrayView1<f64>,
+) -> Result<Vec<report::CoveragePoint>, Error> {
     let mut parts = Vec::new();
     for outer in &validation.chosen().outer {
         let residuals: Vec<f64> = outer.inner_residuals.iter().map(|r| r.abs()).collect();
         let verdicts = vec![Verdict::Inside; residuals.len()];
-        let cv = CvPlus::new(&outer.inner_folds.fold_of, outer.inner_folds.k, &residuals, &verdicts, usize::MAX)?;
+        let cv = CvPlus::new(
+            &outer.inner_folds.fold_of,
+            outer.inner_folds.k,
+            &residuals,
+            &verdicts,
+            usize::MAX,
+        )?;
         let observed: Vec<f64> = outer.test_rows.iter().map(|&r| y[r]).collect();
         let test_verdicts = vec![Verdict::Inside; observed.len()];
-        parts.push(cv.empirical_coverage(outer.inner_test_predictions.view(), &observed, &test_verdicts, &COVERAGE_LEVELS)?);
+        parts.push(cv.empirical_coverage(
+            outer.inner_test_predictions.view(),
+            &observed,
+            &test_verdicts,
+            &COVERAGE_LEVELS,
+        )?);
     }
     Ok(crate::conformal::Coverage::pool(&parts)
         .into_iter()
-        .map(|c| report::CoveragePoint { nominal: c.nominal, empirical: c.empirical, n: c.n })
+        .map(|c| report::CoveragePoint {
+            nominal: c.nominal,
+            empirical: c.empirical,
+            n: c.n,
+        })
         .collect())
 }
 
@@ -278,7 +323,9 @@ pub const CAUTIONS: &[&str] = &[
 /// full model), column k + 1 every row outside fold k.
 pub fn membership(folds: &Folds) -> Array2<bool> {
     let n = folds.fold_of.len();
-    Array2::from_shape_fn((n, folds.k + 1), |(i, m)| m == 0 || folds.fold_of[i] != m - 1)
+    Array2::from_shape_fn((n, folds.k + 1), |(i, m)| {
+        m == 0 || folds.fold_of[i] != m - 1
+    })
 }
 
 /// Fits the served pipeline at the chosen setting: full model, K fold
@@ -306,13 +353,26 @@ pub fn assemble(
     // The residuals come from the very fold models that will serve, so the
     // calibration is exactly what a query meets.
     let all = predictor.predict(x_std);
-    let oof_predictions: Vec<f64> = (0..y.len()).map(|i| all[[i, folds.fold_of[i] + 1]]).collect();
-    let residuals: Vec<f64> = oof_predictions.iter().zip(y.iter()).map(|(p, y)| (y - p).abs()).collect();
+    let oof_predictions: Vec<f64> = (0..y.len())
+        .map(|i| all[[i, folds.fold_of[i] + 1]])
+        .collect();
+    let residuals: Vec<f64> = oof_predictions
+        .iter()
+        .zip(y.iter())
+        .map(|(p, y)| (y - p).abs())
+        .collect();
     let guard = DomainGuard::fit(x_std, x_raw, domain_settings)?;
     let oof_signals = crate::domain::out_of_fold(x_std, x_raw, folds, domain_settings)?;
     let verdicts: Vec<Verdict> = oof_signals.iter().map(|s| s.verdict).collect();
     let cvplus = CvPlus::new(&folds.fold_of, folds.k, &residuals, &verdicts, min_band)?;
-    Ok(Assembled { predictor, residuals, oof_predictions, guard, oof_signals, cvplus })
+    Ok(Assembled {
+        predictor,
+        residuals,
+        oof_predictions,
+        guard,
+        oof_signals,
+        cvplus,
+    })
 }
 
 /// Seconds spent per stage, in order.
@@ -324,19 +384,31 @@ pub struct Stopwatch {
 
 impl Stopwatch {
     pub fn start() -> Stopwatch {
-        Stopwatch { stages: Vec::new(), last: Some(Instant::now()) }
+        Stopwatch {
+            stages: Vec::new(),
+            last: Some(Instant::now()),
+        }
     }
     pub fn lap(&mut self, stage: &str) {
         let now = Instant::now();
-        let since = self.last.map(|t| now.duration_since(t).as_secs_f64()).unwrap_or(0.0);
+        let since = self
+            .last
+            .map(|t| now.duration_since(t).as_secs_f64())
+            .unwrap_or(0.0);
         self.stages.push((stage.to_string(), since));
         self.last = Some(now);
     }
 }
 
-
 fn claims_of(m: &validate::MetricEstimates) -> report::Claims {
-    report::Claims { mse: m.mse, rmse: m.rmse, mae: m.mae, r2: m.r2, pearson: m.pearson, spearman: m.spearman }
+    report::Claims {
+        mse: m.mse,
+        rmse: m.rmse,
+        mae: m.mae,
+        r2: m.r2,
+        pearson: m.pearson,
+        spearman: m.spearman,
+    }
 }
 
 fn build_report(
@@ -372,7 +444,14 @@ fn build_report(
     let ds = guard.settings();
     let mut counts = BTreeMap::new();
     for v in Verdict::ALL {
-        counts.insert(v.name().to_string(), assembled.oof_signals.iter().filter(|s| s.verdict == v).count());
+        counts.insert(
+            v.name().to_string(),
+            assembled
+                .oof_signals
+                .iter()
+                .filter(|s| s.verdict == v)
+                .count(),
+        );
     }
     FitReport {
         tool_version: env!("CARGO_PKG_VERSION").to_string(),
@@ -467,12 +546,27 @@ fn curves(cv: &validate::GridCv, chosen: usize) -> Vec<report::Curve> {
         _ => (0..points.len()).collect(),
     };
     let (parameter, x_of): (String, fn(&Hyper) -> f64) = match points[chosen] {
-        Hyper::Ridge { .. } => ("alpha".into(), |h| if let Hyper::Ridge { alpha } = h { *alpha } else { f64::NAN }),
-        Hyper::KernelRidge { gamma, .. } => (
-            format!("alpha (gamma = {gamma:.4})"),
-            |h| if let Hyper::KernelRidge { alpha, .. } = h { *alpha } else { f64::NAN },
-        ),
-        Hyper::Knn { .. } => ("k".into(), |h| if let Hyper::Knn { k } = h { *k as f64 } else { f64::NAN }),
+        Hyper::Ridge { .. } => ("alpha".into(), |h| {
+            if let Hyper::Ridge { alpha } = h {
+                *alpha
+            } else {
+                f64::NAN
+            }
+        }),
+        Hyper::KernelRidge { gamma, .. } => (format!("alpha (gamma = {gamma:.4})"), |h| {
+            if let Hyper::KernelRidge { alpha, .. } = h {
+                *alpha
+            } else {
+                f64::NAN
+            }
+        }),
+        Hyper::Knn { .. } => ("k".into(), |h| {
+            if let Hyper::Knn { k } = h {
+                *k as f64
+            } else {
+                f64::NAN
+            }
+        }),
     };
     let curve_points = keep
         .iter()
@@ -492,7 +586,12 @@ fn curves(cv: &validate::GridCv, chosen: usize) -> Vec<report::Curve> {
     }]
 }
 
-fn build_card(table: &Table, options: &FitOptions, validation: &Validation, report: &FitReport) -> Card {
+fn build_card(
+    table: &Table,
+    options: &FitOptions,
+    validation: &Validation,
+    report: &FitReport,
+) -> Card {
     Card {
         target_column: options.target_column.clone(),
         family: validation.chosen_family.name().to_string(),
@@ -519,20 +618,48 @@ fn build_card(table: &Table, options: &FitOptions, validation: &Validation, repo
 pub fn summary(outcome: &FitOutcome, version: &str) -> String {
     let r = &outcome.report;
     let mut s = String::new();
-    let _ = writeln!(s, "model {} version {}: {} {}", outcome.model.info.id, version, r.selection.family, crate::cli::bundle_cmd::hyper_text(&r.selection.hyper));
+    let _ = writeln!(
+        s,
+        "model {} version {}: {} {}",
+        outcome.model.info.id,
+        version,
+        r.selection.family,
+        crate::cli::bundle_cmd::hyper_text(&r.selection.hyper)
+    );
     let c = &r.claims;
     let q = &r.random_split;
     let _ = writeln!(
         s,
         "claims ({} split, nested {}×{}): q² {:.3} ± {:.3}, RMSE {:.3} ± {:.3}, Spearman {:.3} ± {:.3}",
-        r.settings.split, r.settings.folds, r.settings.inner_folds, c.r2.mean, c.r2.se, c.rmse.mean, c.rmse.se, c.spearman.mean, c.spearman.se
+        r.settings.split,
+        r.settings.folds,
+        r.settings.inner_folds,
+        c.r2.mean,
+        c.r2.se,
+        c.rmse.mean,
+        c.rmse.se,
+        c.spearman.mean,
+        c.spearman.se
     );
-    let _ = writeln!(s, "random split would claim q² {:.3} ± {:.3}", q.r2.mean, q.r2.se);
+    let _ = writeln!(
+        s,
+        "random split would claim q² {:.3} ± {:.3}",
+        q.r2.mean, q.r2.se
+    );
     let y = &r.y_randomization;
-    let _ = writeln!(s, "y-randomisation: {} permutations, p = {:.3}", y.permutations, y.p_value);
+    let _ = writeln!(
+        s,
+        "y-randomisation: {} permutations, p = {:.3}",
+        y.permutations, y.p_value
+    );
     for p in &r.conformal.coverage {
         if (p.nominal - 0.9).abs() < 1e-9 {
-            let _ = writeln!(s, "nested-CV coverage of 90% intervals: {:.1}% of {} rows", 100.0 * p.empirical, p.n);
+            let _ = writeln!(
+                s,
+                "nested-CV coverage of 90% intervals: {:.1}% of {} rows",
+                100.0 * p.empirical,
+                p.n
+            );
         }
     }
     s
@@ -560,7 +687,12 @@ pub fn rfc3339(unix_seconds: i64) -> String {
     let d = doy - (153 * mp + 2) / 5 + 1;
     let m = if mp < 10 { mp + 3 } else { mp - 9 };
     let y = yoe + era * 400 + i64::from(m <= 2);
-    format!("{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}Z", sod / 3600, sod % 3600 / 60, sod % 60)
+    format!(
+        "{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}Z",
+        sod / 3600,
+        sod % 3600 / 60,
+        sod % 60
+    )
 }
 
 #[cfg(test)]
@@ -579,7 +711,10 @@ mod tests {
 
     #[test]
     fn membership_leaves_out_exactly_each_fold() {
-        let folds = Folds { k: 3, fold_of: vec![0, 1, 2, 0, 1] };
+        let folds = Folds {
+            k: 3,
+            fold_of: vec![0, 1, 2, 0, 1],
+        };
         let m = membership(&folds);
         assert_eq!(m.dim(), (5, 4));
         assert!(m.column(0).iter().all(|&b| b));
@@ -593,7 +728,10 @@ mod tests {
     #[test]
     fn split_specs_parse_and_reject() {
         assert_eq!(SplitSpec::parse("cluster").unwrap(), SplitSpec::Cluster);
-        assert_eq!(SplitSpec::parse("group:series").unwrap(), SplitSpec::Group("series".into()));
+        assert_eq!(
+            SplitSpec::parse("group:series").unwrap(),
+            SplitSpec::Group("series".into())
+        );
         assert_eq!(SplitSpec::parse("time:date").unwrap().text(), "time:date");
         assert!(SplitSpec::parse("group:").is_err());
         assert!(SplitSpec::parse("clusters").is_err());

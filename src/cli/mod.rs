@@ -12,7 +12,11 @@ pub mod fit;
 pub mod predict;
 
 #[derive(Debug, Parser)]
-#[command(name = "plumbline", version, about = "Honest regression models and a gRPC scoring service with an applicability-domain guard")]
+#[command(
+    name = "plumbline",
+    version,
+    about = "Honest regression models and a gRPC scoring service with an applicability-domain guard"
+)]
 pub struct Cli {
     #[command(subcommand)]
     pub command: Command,
