@@ -1,1 +1,2 @@
-//! TODO
+//! The gRPC service.
+pub mod settings;
