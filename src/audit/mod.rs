@@ -36,7 +36,9 @@ pub enum Error {
         #[source]
         source: rusqlite::Error,
     },
-    #[error("audit database {path}: migration to schema version {version} ({name}) failed: {source}")]
+    #[error(
+        "audit database {path}: migration to schema version {version} ({name}) failed: {source}"
+    )]
     Migrate {
         path: PathBuf,
         version: usize,

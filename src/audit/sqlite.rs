@@ -86,7 +86,8 @@ pub fn open_for_writing(path: &Path, synchronous: Synchronous) -> Result<Connect
         source,
     };
     let conn = Connection::open(path).map_err(open_err)?;
-    conn.busy_timeout(Duration::from_secs(5)).map_err(open_err)?;
+    conn.busy_timeout(Duration::from_secs(5))
+        .map_err(open_err)?;
     // journal_mode returns the mode in force; anything but WAL (e.g. on a
     // file system without shared memory) would silently lose concurrency.
     let mode: String = conn
@@ -153,7 +154,10 @@ pub fn max_request_id(conn: &Connection) -> Result<u64, Error> {
     let id: Option<String> = conn
         .query_row("SELECT max(request_id) FROM requests", [], |r| r.get(0))
         .map_err(|source| Error::Read { source })?;
-    Ok(id.as_deref().and_then(super::ids::parse_request_id).unwrap_or(0))
+    Ok(id
+        .as_deref()
+        .and_then(super::ids::parse_request_id)
+        .unwrap_or(0))
 }
 
 /// Writes the entries inside `tx` (the caller commits).
@@ -313,7 +317,10 @@ impl AuditReader {
             .map_err(|source| Error::Read { source })?;
         let mut out = Vec::new();
         for raw in rows {
-            out.push(raw.map_err(|source| Error::Read { source })?.into_record()?);
+            out.push(
+                raw.map_err(|source| Error::Read { source })?
+                    .into_record()?,
+            );
         }
         Ok(out)
     }
@@ -342,7 +349,10 @@ impl AuditReader {
             .map_err(|source| Error::Read { source })?;
         let mut out = Vec::new();
         for raw in rows {
-            out.push(raw.map_err(|source| Error::Read { source })?.into_record()?);
+            out.push(
+                raw.map_err(|source| Error::Read { source })?
+                    .into_record()?,
+            );
         }
         Ok(out)
     }
@@ -541,10 +551,7 @@ mod tests {
             conn.pragma_update(None, "user_version", 99).unwrap();
         }
         let err = open_for_writing(&path, Synchronous::Full).unwrap_err();
-        assert!(
-            matches!(err, Error::NewerSchema { found: 99, .. }),
-            "{err}"
-        );
+        assert!(matches!(err, Error::NewerSchema { found: 99, .. }), "{err}");
     }
 
     #[test]

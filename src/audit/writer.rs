@@ -196,11 +196,20 @@ fn write_in_transaction(conn: &mut Connection, entries: &[&Entry]) -> rusqlite::
 /// the WAL does not grow without bound under long-running readers.
 fn checkpoint(conn: &Connection, stats: &mut WriterStats) {
     match conn.query_row("PRAGMA wal_checkpoint(PASSIVE)", [], |r| {
-        Ok((r.get::<_, i64>(0)?, r.get::<_, i64>(1)?, r.get::<_, i64>(2)?))
+        Ok((
+            r.get::<_, i64>(0)?,
+            r.get::<_, i64>(1)?,
+            r.get::<_, i64>(2)?,
+        ))
     }) {
         Ok((busy, log, done)) => {
             stats.checkpoints += 1;
-            tracing::debug!(busy, wal_frames = log, checkpointed = done, "audit WAL checkpoint");
+            tracing::debug!(
+                busy,
+                wal_frames = log,
+                checkpointed = done,
+                "audit WAL checkpoint"
+            );
         }
         Err(e) => tracing::warn!(error = %e, "audit WAL checkpoint failed"),
     }

@@ -237,13 +237,14 @@ impl Settings {
             let keys: Vec<&str> = overrides.iter().map(|(k, _)| *k).collect();
             origin = format!("{origin}, overrides {}", keys.join(", "));
         }
-        let settings: Settings = builder
-            .build()
-            .and_then(|c| c.try_deserialize())
-            .map_err(|source| Error::Load {
-                origin: origin.clone(),
-                source,
-            })?;
+        let settings: Settings =
+            builder
+                .build()
+                .and_then(|c| c.try_deserialize())
+                .map_err(|source| Error::Load {
+                    origin: origin.clone(),
+                    source,
+                })?;
         settings.check()?;
         Ok(settings)
     }
@@ -407,7 +408,11 @@ mod tests {
     #[test]
     fn bad_values_name_their_key() {
         let cases = [
-            ("PLUMBLINE_SERVER__LISTEN", "not-an-address", "server.listen"),
+            (
+                "PLUMBLINE_SERVER__LISTEN",
+                "not-an-address",
+                "server.listen",
+            ),
             ("PLUMBLINE_SERVER__MAX_CANDIDATES", "lots", "max_candidates"),
             ("PLUMBLINE_POLICY__OUTSIDE", "ignore", "outside"),
             (
@@ -415,7 +420,11 @@ mod tests {
                 "0.3",
                 "policy.default_confidence",
             ),
-            ("PLUMBLINE_SERVER__MAX_CANDIDATES", "0", "server.max_candidates"),
+            (
+                "PLUMBLINE_SERVER__MAX_CANDIDATES",
+                "0",
+                "server.max_candidates",
+            ),
             ("PLUMBLINE_AUDIT__BATCH_MAX", "0", "audit.batch_max"),
             (
                 "PLUMBLINE_SERVER__MAX_MESSAGE_BYTES",
