@@ -19,12 +19,13 @@ use crate::pb::scoring_client::ScoringClient;
 const CHUNK: usize = 1000;
 
 /// Scores `data_csv` against the server at `endpoint` and writes `out_csv`.
-/// `model` None = the server's default; `confidence` None = the default.
+/// An empty `model` means the server's default; `confidence` None means the
+/// model's default.
 pub async fn score_client(
     endpoint: &str,
     data_csv: &Path,
     out_csv: &Path,
-    model: Option<&str>,
+    model: &str,
     confidence: Option<f64>,
     id_column: &str,
 ) -> anyhow::Result<()> {
@@ -35,7 +36,7 @@ pub async fn score_client(
         .max_encoding_message_size(64 << 20);
     let card = client
         .describe_model(pb::DescribeModelRequest {
-            model: model.unwrap_or_default().to_string(),
+            model: model.to_string(),
         })
         .await
         .map_err(|s| anyhow!("DescribeModel failed: {}", s.message()))?
