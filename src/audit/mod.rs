@@ -275,3 +275,48 @@ fn hex(bytes: &[u8]) -> String {
     }
     s
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn fixture() -> serde_json::Value {
+        let path = concat!(
+            env!("CARGO_MANIFEST_DIR"),
+            "/tests/fixtures/service_reference.json"
+        );
+        let text = std::fs::read_to_string(path).expect("run tests/reference/service_ref.py");
+        serde_json::from_str(&text).expect("fixture JSON")
+    }
+
+    /// Reference: Python's hashlib.sha256 over struct.pack('<Nd', ...), from
+    /// tests/reference/service_ref.py.
+    #[test]
+    fn descriptor_hash_matches_hashlib_over_little_endian_doubles() {
+        let f = fixture();
+        let cases = f["descriptor_hashes"].as_array().expect("cases");
+        assert!(cases.len() >= 5);
+        for case in cases {
+            let values: Vec<f64> = case["bits"]
+                .as_array()
+                .expect("bits")
+                .iter()
+                .map(|b| {
+                    f64::from_bits(u64::from_str_radix(b.as_str().expect("hex"), 16).expect("hex"))
+                })
+                .collect();
+            // Python's repr of each value reads back to the same double here.
+            for (v, r) in values
+                .iter()
+                .zip(case["values"].as_array().expect("values"))
+            {
+                let parsed: f64 = r.as_str().expect("repr").parse().expect("float");
+                assert_eq!(parsed.to_bits(), v.to_bits());
+            }
+            assert_eq!(
+                descriptor_hash(&values),
+                case["sha256"].as_str().expect("sha")
+            );
+        }
+    }
+}

@@ -137,6 +137,35 @@ mod tests {
         }
     }
 
+    /// Reference: headers built with Python's struct.pack('>BI', 0, length)
+    /// after the gRPC length-prefixed framing, from
+    /// tests/reference/service_ref.py.
+    #[test]
+    fn headers_built_by_python_are_read_as_their_lengths() {
+        let path = concat!(
+            env!("CARGO_MANIFEST_DIR"),
+            "/tests/fixtures/service_reference.json"
+        );
+        let text = std::fs::read_to_string(path).expect("run tests/reference/service_ref.py");
+        let f: serde_json::Value = serde_json::from_str(&text).expect("fixture JSON");
+        for frame in f["grpc_frames"].as_array().expect("frames") {
+            let length = frame["length"].as_u64().expect("length") as usize;
+            let hex = frame["header"].as_str().expect("header");
+            let header: Vec<u8> = (0..hex.len())
+                .step_by(2)
+                .map(|i| u8::from_str_radix(&hex[i..i + 2], 16).expect("hex"))
+                .collect();
+            let mut f = FrameLimit::new(Body::empty(), u32::MAX as usize);
+            f.scan(&header).expect("within the limit");
+            assert_eq!(f.remaining, length);
+            if length > 0 {
+                let mut f = FrameLimit::new(Body::empty(), length - 1);
+                let err = f.scan(&header).expect_err("one byte over");
+                assert!(err.message().contains(&format!("{length} bytes")));
+            }
+        }
+    }
+
     #[test]
     fn an_oversized_frame_is_refused_naming_the_setting() {
         let mut stream = frame(10);
