@@ -24,6 +24,7 @@ pub mod report;
 pub mod scoring;
 pub mod service;
 pub mod space;
+pub mod telemetry;
 pub mod validate;
 
 /// Code generated from `proto/plumbline/v1/*.proto`.

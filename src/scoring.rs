@@ -102,6 +102,9 @@ pub struct ModelInfo {
     pub default_confidence: f64,
 }
 
+/// Rows scored at once: bounds the B × n kernel block to a few tens of MB.
+const SCORE_CHUNK: usize = 1024;
+
 /// The fitted pipeline.
 #[derive(Clone, Debug)]
 pub struct ScoringModel {
@@ -121,8 +124,25 @@ impl ScoringModel {
 
     /// Scores B candidates given as raw descriptor rows in the bundle's
     /// order. Every value must be finite: callers reject bad rows first.
-    pub fn score(&self, _x_raw: ArrayView2<f64>, _confidence: f64) -> Vec<CandidateScore> {
-        todo!()
+    pub fn score(&self, x_raw: ArrayView2<f64>, confidence: f64) -> Vec<CandidateScore> {
+        let mut out = Vec::with_capacity(x_raw.nrows());
+        // Chunks bound the memory of the B × n kernel (or distance) block.
+        for start in (0..x_raw.nrows()).step_by(SCORE_CHUNK) {
+            let end = (start + SCORE_CHUNK).min(x_raw.nrows());
+            self.score_chunk(x_raw.slice(ndarray::s![start..end, ..]), confidence, &mut out);
+        }
+        out
+    }
+
+    fn score_chunk(&self, x_raw: ArrayView2<f64>, confidence: f64, out: &mut Vec<CandidateScore>) {
+        let x_std = self.standardizer.transform(x_raw);
+        let predictions = self.predictor.predict(x_std.view());
+        let domain = self.domain.assess(x_std.view(), x_raw);
+        for (row, signals) in predictions.rows().into_iter().zip(domain) {
+            let folds = row.slice(ndarray::s![1..]).to_vec();
+            let interval = self.cvplus.interval(&folds, confidence, signals.verdict);
+            out.push(CandidateScore { prediction: row[0], interval, domain: signals });
+        }
     }
 }
 

@@ -1,5 +1,7 @@
 //! The descriptor space a model sees: standardisation here, PCA in `pca`.
 
+pub mod pca;
+
 use ndarray::{Array1, Array2, ArrayView2, Axis};
 
 /// Per-descriptor centring and scaling by the population standard deviation
