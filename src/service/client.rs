@@ -215,7 +215,8 @@ fn write_results(
         "status",
         "record_id",
     ])?;
-    let num = |v: Option<f64>| v.map(|x| x.to_string()).unwrap_or_default();
+    // Shortest text that reads back to the same f64, as `predict` writes.
+    let num = |v: Option<f64>| v.map(|x| format!("{x:?}")).unwrap_or_default();
     for r in results {
         let domain = r.domain.as_ref();
         let verdict = domain

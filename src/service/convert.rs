@@ -87,6 +87,7 @@ pub fn domain_report(d: &DomainSignals, model: &LoadedModel) -> pb::DomainReport
         leverage_warning: t.leverage_warning,
         pca_residual: d.pca_residual,
         pca_residual_limit: t.pca_residual_limit,
+        pca_residual_border_limit: t.pca_residual_border_limit,
         out_of_range: out_of_range_names(d, model.info())
             .into_iter()
             .map(|(descriptor, value, min, max)| pb::OutOfRange {
@@ -217,6 +218,10 @@ pub fn model_card(info: &ModelInfo, facts: &CardFacts, is_default: bool) -> pb::
             pca_residual_limit: t.pca_residual_limit,
             typicality_border: t.typicality_border,
             typicality_outside: t.typicality_outside,
+            pca_residual_border_limit: t.pca_residual_border_limit,
+            explained_variance: t.explained_variance,
+            leverage_meaningful: t.leverage_meaningful,
+            z: t.z,
         }),
         training_rows: facts.training_rows,
         training_data_sha256: facts.training_data_sha256.clone(),

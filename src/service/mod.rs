@@ -53,14 +53,49 @@ use scoring_api::ScoringApi;
 pub const SCORING_SERVICE: &str =
     <pb::scoring_server::ScoringServer<ScoringApi> as NamedService>::NAME;
 
-/// Reads bundles with the `bundle` module.
+/// Reads bundles with [`crate::bundle::read`], which verifies the checksum,
+/// the format version and every shape before a model is handed out.
 pub fn bundle_loader() -> Loader {
     Arc::new(|path: &std::path::Path| {
-        Err(format!(
-            "{}: reading bundles is not available in this build",
-            path.display()
-        ))
+        let b = crate::bundle::read(path).map_err(|e| e.to_string())?;
+        Ok(Bundle {
+            facts: card_facts(&b.manifest.card),
+            scorer: Arc::new(b.model),
+        })
     })
+}
+
+/// The model-card facts a bundle's manifest holds beside the model.
+pub fn card_facts(card: &crate::bundle::Card) -> CardFacts {
+    let d = &card.domain;
+    CardFacts {
+        claims: card
+            .claims_map()
+            .into_iter()
+            .map(|(metric, e)| registry::ClaimFact {
+                metric,
+                mean: e.mean,
+                se: e.se,
+            })
+            .collect(),
+        thresholds: registry::ThresholdFacts {
+            k: d.k as u32,
+            components: d.components as u32,
+            explained_variance: d.explained_variance,
+            z: d.z,
+            z_threshold: d.z_threshold,
+            leverage_warning: d.leverage_warning,
+            leverage_meaningful: d.leverage_meaningful,
+            pca_residual_border_limit: d.residual_border_limit,
+            pca_residual_limit: d.residual_outside_limit,
+            typicality_border: d.typicality_border,
+            typicality_outside: d.typicality_outside,
+        },
+        training_rows: card.training_rows as u64,
+        training_data_sha256: card.data_sha256.clone(),
+        created_at: card.created_at.clone(),
+        cautions: card.cautions.clone(),
+    }
 }
 
 /// Runs the server on `listener` until `shutdown` completes, then stops

@@ -49,8 +49,12 @@ pub struct ClaimFact {
 pub struct ThresholdFacts {
     pub k: u32,
     pub components: u32,
+    pub explained_variance: f64,
+    pub z: f64,
     pub z_threshold: f64,
     pub leverage_warning: f64,
+    pub leverage_meaningful: bool,
+    pub pca_residual_border_limit: f64,
     pub pca_residual_limit: f64,
     pub typicality_border: f64,
     pub typicality_outside: f64,

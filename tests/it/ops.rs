@@ -139,6 +139,30 @@ async fn the_model_card_lists_descriptors_in_order_and_the_model_facts() {
     assert!(card.is_default);
     assert_eq!(card.direction, "higher");
     assert_eq!(card.family, info.hyper.family().name());
+    // The facts from the bundle's manifest: the fit's claims and thresholds.
+    let bundle = plumbline::bundle::read(&server.bundles.join("m.plumb")).expect("bundle");
+    let claims: Vec<(String, f64, f64)> = card
+        .claims
+        .iter()
+        .map(|c| (c.metric.clone(), c.mean, c.se))
+        .collect();
+    let want: Vec<(String, f64, f64)> = bundle
+        .manifest
+        .card
+        .claims_map()
+        .into_iter()
+        .map(|(m, e)| (m, e.mean, e.se))
+        .collect();
+    assert_eq!(claims, want);
+    assert!(claims.iter().any(|c| c.0 == "rmse"));
+    assert_eq!(card.training_rows, 160);
+    let d = card.domain.expect("thresholds");
+    let t = &bundle.manifest.card.domain;
+    assert_eq!(d.k as usize, t.k);
+    assert_eq!(d.pca_residual_limit, t.residual_outside_limit);
+    assert_eq!(d.pca_residual_border_limit, t.residual_border_limit);
+    assert_eq!(d.typicality_border, t.typicality_border);
+    assert_eq!(d.leverage_warning, t.leverage_warning);
     let err = client
         .describe_model(pb::DescribeModelRequest {
             model: "none".into(),
