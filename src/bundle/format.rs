@@ -196,7 +196,9 @@ pub fn decode(bytes: &[u8]) -> Result<Sections, FormatError> {
             ),
             3 => Elements::U8(r.take_elems(len, 1, &name)?.to_vec()),
             other => {
-                return Err(r.malformed(&format!("array '{name}' has unknown element type {other}")));
+                return Err(
+                    r.malformed(&format!("array '{name}' has unknown element type {other}"))
+                );
             }
         };
         if arrays

@@ -49,7 +49,12 @@ pub fn run(args: &DemoArgs) -> anyhow::Result<()> {
     if args.regenerate_data {
         let dir = Path::new("demo-data");
         let files = demo::generate(demo::SEED, dir).context("regenerating demo-data/")?;
-        println!("wrote {}, {} and {}", files.training.display(), files.next_round.display(), files.lab_results.display());
+        println!(
+            "wrote {}, {} and {}",
+            files.training.display(),
+            files.next_round.display(),
+            files.lab_results.display()
+        );
         return Ok(());
     }
     let paths = DemoPaths::new(&args.dir);
@@ -65,21 +70,31 @@ pub fn run_demo(paths: &DemoPaths, keep_serving: bool) -> anyhow::Result<String>
     }
     for f in [&paths.bundle, &paths.audit] {
         if let Some(parent) = f.parent() {
-            std::fs::create_dir_all(parent).with_context(|| format!("creating {}", parent.display()))?;
+            std::fs::create_dir_all(parent)
+                .with_context(|| format!("creating {}", parent.display()))?;
         }
     }
     let training = paths.data.join(demo::TRAINING_FILE);
     let next_round = paths.data.join(demo::NEXT_ROUND_FILE);
     let lab = paths.data.join(demo::LAB_RESULTS_FILE);
-    for (p, bytes) in [(&training, TRAINING), (&next_round, NEXT_ROUND), (&lab, LAB_RESULTS)] {
+    for (p, bytes) in [
+        (&training, TRAINING),
+        (&next_round, NEXT_ROUND),
+        (&lab, LAB_RESULTS),
+    ] {
         std::fs::write(p, bytes).with_context(|| format!("writing {}", p.display()))?;
     }
 
     let mut out = String::new();
-    out.push_str("plumbline demo: an invented lead-optimisation programme (see demo-data/README.md)\n\n");
+    out.push_str(
+        "plumbline demo: an invented lead-optimisation programme (see demo-data/README.md)\n\n",
+    );
     out.push_str(&fit_step(&training, paths)?);
 
-    let runtime = tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build()?;
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()?;
     let served = runtime.block_on(serve_and_score(paths, &next_round, &lab, keep_serving))?;
     out.push_str(&served);
     out.push_str(&format!(
@@ -101,30 +116,55 @@ fn fit_step(training: &Path, paths: &DemoPaths) -> anyhow::Result<String> {
         target: Some(demo::TARGET_COLUMN.into()),
         group: None,
         time: None,
-        descriptors: None,
+        descriptors: Some(descriptors()),
         drop_incomplete: false,
     };
     let table = crate::data::read_table(training, &spec)?;
-    let mut options = crate::fit::FitOptions::new("demo-activity", "enzyme inhibition (pIC50-like)");
+    let mut options =
+        crate::fit::FitOptions::new("demo-activity", "enzyme inhibition (pIC50-like)");
     options.id_column = demo::ID_COLUMN.into();
     options.target_column = demo::TARGET_COLUMN.into();
     options.unit = "log units".into();
-    let outcome = crate::fit::fit(&table, &training.display().to_string(), &options, &|_, _, _| {})?;
+    let outcome = crate::fit::fit(
+        &table,
+        &training.display().to_string(),
+        &options,
+        &|_, _, _| {},
+    )?;
     crate::report::write(&outcome.report, &paths.report)?;
-    let version = crate::bundle::write(&paths.bundle, &outcome.model, &outcome.card, &table.ids, &outcome.training_y)?;
-    let mut s = format!("1. fit on {} compounds × {} descriptors\n", table.ids.len(), table.descriptor_names.len());
+    let version = crate::bundle::write(
+        &paths.bundle,
+        &outcome.model,
+        &outcome.card,
+        &table.ids,
+        &outcome.training_y,
+    )?;
+    let mut s = format!(
+        "1. fit on {} compounds × {} descriptors\n",
+        table.ids.len(),
+        table.descriptor_names.len()
+    );
     for line in crate::fit::summary(&outcome, &version).lines() {
         s.push_str(&format!("   {line}\n"));
     }
     Ok(s)
 }
 
-async fn serve_and_score(paths: &DemoPaths, next_round: &Path, lab: &Path, keep_serving: bool) -> anyhow::Result<String> {
+async fn serve_and_score(
+    paths: &DemoPaths,
+    next_round: &Path,
+    lab: &Path,
+    keep_serving: bool,
+) -> anyhow::Result<String> {
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
     let addr = listener.local_addr()?;
     let mut settings = crate::service::settings::Settings::default();
     settings.server.listen = addr;
-    settings.models.dir = paths.bundle.parent().map(Path::to_path_buf).unwrap_or_default();
+    settings.models.dir = paths
+        .bundle
+        .parent()
+        .map(Path::to_path_buf)
+        .unwrap_or_default();
     settings.audit.path = paths.audit.clone();
     let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
     let server = tokio::spawn(crate::service::run(settings, listener, async move {
@@ -138,7 +178,7 @@ async fn serve_and_score(paths: &DemoPaths, next_round: &Path, lab: &Path, keep_
         target: None,
         group: None,
         time: None,
-        descriptors: None,
+        descriptors: Some(descriptors()),
         drop_incomplete: false,
     };
     let table = crate::data::read_table(next_round, &spec)?;
@@ -146,7 +186,10 @@ async fn serve_and_score(paths: &DemoPaths, next_round: &Path, lab: &Path, keep_
         .ids
         .iter()
         .zip(table.x.rows())
-        .map(|(id, row)| pb::Candidate { id: id.clone(), descriptors: row.to_vec() })
+        .map(|(id, row)| pb::Candidate {
+            id: id.clone(),
+            descriptors: row.to_vec(),
+        })
         .collect();
     let response = client
         .score(pb::ScoreRequest {
@@ -167,7 +210,7 @@ async fn serve_and_score(paths: &DemoPaths, next_round: &Path, lab: &Path, keep_
         response.model_version
     );
     s.push_str(&summarise(&response));
-    s.push_str(&compare_with_lab(&response, lab)?);
+    s.push_str(&compare_with_lab(&response, lab, &paths.bundle, &table)?);
 
     if keep_serving {
         s.push_str(&format!(
@@ -197,7 +240,16 @@ async fn connect(endpoint: &str) -> anyhow::Result<ScoringClient<tonic::transpor
         }
         tokio::time::sleep(std::time::Duration::from_millis(100)).await;
     }
-    Err(last.unwrap_or_else(|| anyhow::anyhow!("no answer")).context(format!("connecting to {endpoint}")))
+    Err(last
+        .unwrap_or_else(|| anyhow::anyhow!("no answer"))
+        .context(format!("connecting to {endpoint}")))
+}
+
+fn descriptors() -> Vec<String> {
+    demo::descriptor_names()
+        .into_iter()
+        .map(str::to_string)
+        .collect()
 }
 
 fn fmt_opt(v: Option<f64>) -> String {
@@ -210,13 +262,26 @@ fn summarise(r: &pb::ScoreResponse) -> String {
         *counts.entry(status_name(c.status)).or_default() += 1;
     }
     let mut s = String::from("   status: ");
-    s.push_str(&counts.iter().map(|(k, v)| format!("{k} {v}")).collect::<Vec<_>>().join(", "));
-    s.push_str(&format!("\n\n   top ranked (interval at confidence {}):\n", r.confidence));
+    s.push_str(
+        &counts
+            .iter()
+            .map(|(k, v)| format!("{k} {v}"))
+            .collect::<Vec<_>>()
+            .join(", "),
+    );
+    s.push_str(&format!(
+        "\n\n   top ranked (interval at confidence {}):\n",
+        r.confidence
+    ));
     s.push_str("   rank  compound    prediction  interval          verdict\n");
     let mut ranked: Vec<&pb::ScoredCandidate> = r.results.iter().filter(|c| c.rank > 0).collect();
     ranked.sort_by_key(|c| c.rank);
     for c in ranked.iter().take(10) {
-        let verdict = c.domain.as_ref().map(|d| verdict_name(d.verdict)).unwrap_or("-");
+        let verdict = c
+            .domain
+            .as_ref()
+            .map(|d| verdict_name(d.verdict))
+            .unwrap_or("-");
         s.push_str(&format!(
             "   {:>4}  {:<10} {:>10}  [{:>6}, {:>6}]  {}\n",
             c.rank,
@@ -229,50 +294,130 @@ fn summarise(r: &pb::ScoreResponse) -> String {
     }
     let unranked: Vec<&pb::ScoredCandidate> = r.results.iter().filter(|c| c.rank == 0).collect();
     if !unranked.is_empty() {
-        s.push_str(&format!("\n   not ranked ({}), first few with the reasons:\n", unranked.len()));
+        s.push_str(&format!(
+            "\n   not ranked ({}), first few with the reasons:\n",
+            unranked.len()
+        ));
         for c in unranked.iter().take(8) {
-            let notes = c.domain.as_ref().map(|d| d.notes.join("; ")).unwrap_or_default();
-            let why = if c.reason.is_empty() { notes } else { c.reason.clone() };
-            s.push_str(&format!("   {:<10} {:<8} {}\n", c.id, status_name(c.status), why));
+            // The first note is the weightiest reason (outside ones come first).
+            let why = c
+                .domain
+                .as_ref()
+                .and_then(|d| d.notes.first().cloned())
+                .unwrap_or_else(|| c.reason.clone());
+            let more = c
+                .domain
+                .as_ref()
+                .map(|d| d.notes.len().saturating_sub(1))
+                .unwrap_or(0);
+            let more = if more > 0 {
+                format!(" (+{more} more)")
+            } else {
+                String::new()
+            };
+            s.push_str(&format!(
+                "   {:<10} {:<8} {why}{more}\n",
+                c.id,
+                status_name(c.status)
+            ));
         }
     }
     s
 }
 
-/// The lab results that came back, against the predictions and the claims.
-fn compare_with_lab(r: &pb::ScoreResponse, lab: &Path) -> anyhow::Result<String> {
-    let mut reader = csv::Reader::from_path(lab).with_context(|| format!("reading {}", lab.display()))?;
+/// The lab results that came back, against the predictions and the claims;
+/// and what the refused candidates would have cost had they been ranked.
+fn compare_with_lab(
+    r: &pb::ScoreResponse,
+    lab: &Path,
+    bundle: &Path,
+    next: &crate::data::Table,
+) -> anyhow::Result<String> {
+    let mut reader =
+        csv::Reader::from_path(lab).with_context(|| format!("reading {}", lab.display()))?;
     let mut measured = BTreeMap::new();
     for rec in reader.records() {
         let rec = rec?;
-        let (Some(id), Some(v)) = (rec.get(0), rec.get(1)) else { continue };
+        let (Some(id), Some(v)) = (rec.get(0), rec.get(1)) else {
+            continue;
+        };
         if let Ok(v) = v.trim().parse::<f64>() {
             measured.insert(id.to_string(), v);
         }
     }
-    let mut by_group: BTreeMap<&str, (Vec<f64>, Vec<f64>, usize)> = BTreeMap::new();
-    for c in &r.results {
-        let (Some(&y), Some(p)) = (measured.get(&c.id), c.prediction) else { continue };
-        let group = c.domain.as_ref().map(|d| verdict_name(d.verdict)).unwrap_or("-");
-        let inside = c.lower.is_none_or(|l| y >= l) && c.upper.is_none_or(|u| y <= u);
-        for key in ["all", group] {
-            let e = by_group.entry(key).or_default();
-            e.0.push(y);
-            e.1.push(p);
-            e.2 += usize::from(inside);
+    // Refused candidates carry no prediction in the answer; score them
+    // offline with the same bundle to show what ranking them would have meant.
+    let b = crate::bundle::read(bundle)?;
+    let offline = b.model.score(next.x.view(), r.confidence);
+    let mut groups: BTreeMap<String, Group> = BTreeMap::new();
+    for (c, off) in r.results.iter().zip(&offline) {
+        let Some(&y) = measured.get(&c.id) else {
+            continue;
+        };
+        let key = match (c.prediction, status_name(c.status)) {
+            (Some(_), _) => c
+                .domain
+                .as_ref()
+                .map(|d| verdict_name(d.verdict))
+                .unwrap_or("-")
+                .to_string(),
+            (None, status) => format!("{status}*"),
+        };
+        let inside =
+            off.interval.lower.is_none_or(|l| y >= l) && off.interval.upper.is_none_or(|u| y <= u);
+        groups
+            .entry(key)
+            .or_default()
+            .add(y, off.prediction, inside);
+        if c.prediction.is_some() {
+            groups
+                .entry("served".into())
+                .or_default()
+                .add(y, off.prediction, inside);
         }
     }
-    let mut s = format!("\n3. lab results for {} candidates came back:\n", measured.len());
-    s.push_str("   subset     n    RMSE   coverage\n");
-    for (k, (y, p, covered)) in &by_group {
-        let rmse = (y.iter().zip(p).map(|(a, b)| (a - b).powi(2)).sum::<f64>() / y.len() as f64).sqrt();
-        s.push_str(&format!("   {k:<8} {:>3}  {rmse:>6.2}   {:>6.1}%\n", y.len(), 100.0 * *covered as f64 / y.len() as f64));
+    let claim = &b.manifest.card.claims.rmse;
+    let mut s = format!(
+        "\n3. lab results for {} candidates came back:\n",
+        measured.len()
+    );
+    s.push_str("   subset          n    RMSE   coverage\n");
+    for (k, g) in &groups {
+        s.push_str(&format!(
+            "   {k:<13} {:>3}  {:>6.2}   {:>6.1}%\n",
+            g.n,
+            g.rmse(),
+            100.0 * g.coverage()
+        ));
     }
     s.push_str(&format!(
-        "   nominal coverage {:.0}%; compare with the claimed RMSE in the bundle card (plumbline bundle inspect)\n",
+        "   claimed by nested CV: RMSE {:.2} ± {:.2}; nominal coverage {:.0}%\n   (* refused: what the model would have said had the guard not refused them)\n",
+        claim.mean,
+        claim.se,
         100.0 * r.confidence
     ));
     Ok(s)
+}
+
+#[derive(Default)]
+struct Group {
+    n: usize,
+    sse: f64,
+    covered: usize,
+}
+
+impl Group {
+    fn add(&mut self, y: f64, p: f64, covered: bool) {
+        self.n += 1;
+        self.sse += (y - p).powi(2);
+        self.covered += usize::from(covered);
+    }
+    fn rmse(&self) -> f64 {
+        (self.sse / self.n.max(1) as f64).sqrt()
+    }
+    fn coverage(&self) -> f64 {
+        self.covered as f64 / self.n.max(1) as f64
+    }
 }
 
 fn status_name(s: i32) -> &'static str {
