@@ -146,3 +146,30 @@ fn created_at_timestamps_are_rfc3339_utc() {
         "1969-12-31T23:59:59Z"
     );
 }
+
+#[test]
+fn plots_place_data_in_the_frame_and_skip_what_cannot_be_drawn() {
+    use plumbline::report::svg::Plot;
+    // The frame runs from x = 64 to 560 − 28 = 532 and from y = 360 − 50 =
+    // 310 (bottom) to 30 (top); on a log axis over [1, 100], 10 is halfway:
+    // 64 + (532 − 64)/2 = 298.
+    let mut p = Plot::new(Scale::log(1.0, 100.0), Scale::linear(0.0, 1.0));
+    p.points(
+        &[
+            (1.0, 0.0),
+            (100.0, 1.0),
+            (10.0, 0.5),
+            (0.0, 0.5),      // no log of zero
+            (f64::NAN, 0.5), // undefined
+        ],
+        3.0,
+        "pt",
+    );
+    let svg = p.finish("a <test> plot");
+    assert_eq!(svg.matches("<circle").count(), 3);
+    assert!(svg.contains(r#"cx="64.0" cy="310.0""#), "{svg}");
+    assert!(svg.contains(r#"cx="532.0" cy="30.0""#), "{svg}");
+    assert!(svg.contains(r#"cx="298.0" cy="170.0""#), "{svg}");
+    assert!(svg.contains("<title>a &lt;test&gt; plot</title>"));
+    assert!(svg.starts_with("<svg ") && svg.ends_with("</svg>"));
+}
