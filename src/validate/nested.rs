@@ -25,6 +25,14 @@ const PERMUTATION_STREAM: u64 = 1_000;
 const RANDOM_SPLIT_STREAM: u64 = 2_000;
 
 /// The settings of one validation.
+///
+/// | Name | Default | Purpose | Range |
+/// | --- | --- | --- | --- |
+/// | `k_outer` | 5 | outer folds: the claims are their mean ± SE | 2 ..= rows (see `data::rows_needed`) |
+/// | `k_inner` | 5 | inner folds: the one-SE selection | 2 ..= outer-training rows |
+/// | `seed` | 1 | every random choice (folds, permutations) derives from it | any u64 |
+/// | `n_permutations` | 10 | y-randomisation permutations; the p-value cannot go below 1/(P+1) | 0 (off) or more |
+/// | `compare_random_split` | on | rerun the chosen family under random folds | on, off |
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 pub struct NestedSettings {
     /// Outer folds (the claims), default 5.
