@@ -218,7 +218,7 @@ pub fn fit(
         descriptor_names: table.descriptor_names.clone(),
         default_confidence: options.default_confidence,
     };
-    let report = build_report(
+    let mut report = build_report(
         table,
         data_path,
         options,
@@ -227,6 +227,7 @@ pub fn fit(
         coverage,
         &watch,
     );
+    report.cautions = fit_cautions(&report);
     let card = build_card(table, options, &validation, &report);
     let model = ScoringModel {
         info,
@@ -311,13 +312,6 @@ fn nested_coverage(
         })
         .collect())
 }
-
-/// The cautions every card and report carries.
-pub const CAUTIONS: &[&str] = &[
-    "Predictions support prioritisation of candidates; they are not safety, dosing or regulatory decisions.",
-    "Confirm every prediction that matters by measurement in the lab, and follow local practice and regulations.",
-    "Claims hold only for candidates like the training data: heed the applicability-domain verdict.",
-];
 
 /// Columns of the fold-model membership matrix: column 0 is every row (the
 /// full model), column k + 1 every row outside fold k.
@@ -455,7 +449,7 @@ fn build_report(
     }
     FitReport {
         tool_version: env!("CARGO_PKG_VERSION").to_string(),
-        created_at: rfc3339_now(),
+        created_at: report::rfc3339_utc(std::time::SystemTime::now()),
         data: report::DataSummary {
             path: data_path.to_string(),
             sha256: table.sha256.clone(),
@@ -531,7 +525,7 @@ fn build_report(
             coverage,
         },
         timings: watch.stages.iter().map(|(s, t)| report::Timing { stage: s.clone(), seconds: *t }).collect(),
-        cautions: CAUTIONS.iter().map(|c| c.to_string()).collect(),
+        cautions: Vec::new(),
     }
 }
 
@@ -610,8 +604,51 @@ fn build_card(
         inner_folds: options.inner_folds,
         created_at: report.created_at.clone(),
         tool_version: report.tool_version.clone(),
-        cautions: report.cautions.clone(),
+        cautions: report::GENERAL_CAUTIONS
+            .iter()
+            .map(|c| c.to_string())
+            .chain(report.cautions.iter().cloned())
+            .collect(),
     }
+}
+
+/// Cautions particular to this fit, from what the validation found.
+fn fit_cautions(r: &FitReport) -> Vec<String> {
+    let mut out = Vec::new();
+    if r.claims.r2.mean <= 0.0 {
+        out.push(format!(
+            "The model shows no out-of-fold skill on the {} split (q² = {:.3}): its rankings are no better than the mean.",
+            r.settings.split, r.claims.r2.mean
+        ));
+    }
+    let y = &r.y_randomization;
+    if y.permutations > 0
+        && y.p_value > 0.05
+        && y.p_value * (y.permutations as f64 + 1.0) > 1.0 + 1e-9
+    {
+        out.push(format!(
+            "y-randomisation does not separate the model from chance (p = {:.3}).",
+            y.p_value
+        ));
+    }
+    let gap = r.random_split.r2.mean - r.claims.r2.mean;
+    let se = (r.random_split.r2.se.powi(2) + r.claims.r2.se.powi(2)).sqrt();
+    if gap > 2.0 * se && gap > 0.05 {
+        out.push(format!(
+            "A random split would claim q² {:.3}, {:.3} above the {} split: new candidates unlike the training series will fare worse than random-split figures suggest.",
+            r.random_split.r2.mean, gap, r.settings.split
+        ));
+    }
+    if !r.domain.leverage_meaningful {
+        out.push("The leverage warning h* is at least 1 (too few rows for the components): leverage is not used.".into());
+    }
+    for b in r.conformal.bands.iter().filter(|b| !b.used) {
+        out.push(format!(
+            "The {} band has {} calibration rows: its intervals use the pooled residuals.",
+            b.verdict, b.n
+        ));
+    }
+    out
 }
 
 /// A few lines for the terminal after a fit.
@@ -665,49 +702,9 @@ pub fn summary(outcome: &FitOutcome, version: &str) -> String {
     s
 }
 
-/// The current UTC time as RFC 3339 (seconds), from the civil-from-days
-/// algorithm of H. Hinnant ("chrono-Compatible Low-Level Date Algorithms").
-pub fn rfc3339_now() -> String {
-    let secs = std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .map(|d| d.as_secs() as i64)
-        .unwrap_or(0);
-    rfc3339(secs)
-}
-
-pub fn rfc3339(unix_seconds: i64) -> String {
-    let days = unix_seconds.div_euclid(86_400);
-    let sod = unix_seconds.rem_euclid(86_400);
-    let z = days + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z - era * 146_097;
-    let yoe = (doe - doe / 1_460 + doe / 36_524 - doe / 146_096) / 365;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let d = doy - (153 * mp + 2) / 5 + 1;
-    let m = if mp < 10 { mp + 3 } else { mp - 9 };
-    let y = yoe + era * 400 + i64::from(m <= 2);
-    format!(
-        "{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}Z",
-        sod / 3600,
-        sod % 3600 / 60,
-        sod % 60
-    )
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn rfc3339_matches_known_instants() {
-        // 0 is the Unix epoch; 951782400 is 2000-02-29T00:00:00Z and
-        // 1798761599 is 2026-12-31T23:59:59Z (both checked with GNU
-        // `date -u -d @N`).
-        assert_eq!(rfc3339(0), "1970-01-01T00:00:00Z");
-        assert_eq!(rfc3339(951_782_400), "2000-02-29T00:00:00Z");
-        assert_eq!(rfc3339(1_798_761_599), "2026-12-31T23:59:59Z");
-    }
 
     #[test]
     fn membership_leaves_out_exactly_each_fold() {
