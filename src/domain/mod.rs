@@ -6,7 +6,8 @@
 //! standardised descriptors (`space::pca`), with p kept components fitted
 //! on the n training rows.
 //! - **k-NN distance** d: mean Euclidean distance to the k nearest training
-//!   points (a kiddo k-d tree over the scores).
+//!   points (a kiddo k-d tree over the scores, as wide as the kept
+//!   components).
 //! - **Typicality** p = (1 + #{i: Dᵢ ≥ d})/(n + 1), where Dᵢ is training row
 //!   i's mean distance to its k nearest *other* training rows (left out by
 //!   index, so duplicate rows are neighbours at distance 0): the conformal
@@ -21,9 +22,10 @@
 //! - **PCA residual** Q: squared norm of the part of the standardised row
 //!   that the kept components do not explain, against the 95% and 99%
 //!   quantiles of the training rows' Q (common practice). The training Q are
-//!   in-sample, so new points exceed these limits somewhat more often than
-//!   5% and 1%. When the components explain all training variance, Q is not
-//!   used.
+//!   in-sample, so new points exceed these limits more often than 5% and 1%:
+//!   measured out-of-fold on the diabetes data (442 rows, 5 folds), 5.5% of
+//!   rows exceeded the 95% limit and 2.3% the 99% limit. When the components
+//!   explain all training variance, Q is not used.
 //! - **Range**: each descriptor against its training minimum and maximum,
 //!   in raw units; every violation is listed with its value, min and max.
 //!
