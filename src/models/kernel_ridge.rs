@@ -99,8 +99,11 @@ pub(super) fn fit_members(
     })
 }
 
-/// B × m predictions: one kernel block k(x, X) (B × n) times the n × m
-/// dual coefficients, whose zeros outside a member drop its other rows.
+/// B × m predictions: each query's kernel row k(x, X) (length n) times the
+/// n × m dual coefficients, whose zeros outside a member drop its other
+/// rows, so one kernel row serves the full model and every fold model.
+/// Blocked so the B × n kernel is never formed whole (see
+/// [`linalg::rbf_kernel_times`]).
 pub(super) fn predict(
     gamma: f64,
     train: &Array2<f64>,
@@ -108,8 +111,8 @@ pub(super) fn predict(
     offset: &Array1<f64>,
     x: ArrayView2<f64>,
 ) -> Array2<f64> {
-    let k = linalg::rbf_kernel(x, train.view(), gamma, None);
-    let mut out = linalg::matmul(k.view(), dual.view());
+    let norms = linalg::row_sq_norms(train.view());
+    let mut out = linalg::rbf_kernel_times(x, train.view(), &norms, gamma, dual.view());
     out += &offset.view().insert_axis(Axis(0));
     out
 }
