@@ -395,7 +395,11 @@ impl NestedPass<'_> {
         let inner_seed = derive_seed(self.seed, 1 + f as u64);
         let inner_folds = self
             .design
-            .folds(&train_rows, self.settings.k_inner, inner_seed)?;
+            .folds(&train_rows, self.settings.k_inner, inner_seed)
+            .map_err(|source| Error::InnerFolds {
+                outer_fold: f,
+                source: Box::new(source),
+            })?;
         let inner = grid_cv(
             grid,
             xs_train.view(),
@@ -430,7 +434,12 @@ impl NestedPass<'_> {
             inner_best_mse: inner
                 .best(0)
                 .map_or(f64::NAN, |g| inner.test_mse[[g, 0]].mean),
-            inner_test_predictions: inner.extra.slice(s![.., g0, ..]).t().to_owned(),
+            inner_test_predictions: inner
+                .extra
+                .slice(s![.., g0, ..])
+                .t()
+                .as_standard_layout()
+                .into_owned(),
             inner_residuals,
             inner_folds,
             test_predictions: test_pred.column(0).to_vec(),

@@ -1,0 +1,569 @@
+//! The SQLite side of the audit store: opening (WAL, `synchronous`), the
+//! schema as an ordered list of migrations tracked by `PRAGMA user_version`,
+//! the writes one commit performs, and the read API.
+
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use rusqlite::{Connection, OpenFlags, OptionalExtension, Transaction, params};
+
+use super::{
+    CandidateRecord, CandidateStatus, Counts, Entry, Error, Method, OutOfRangeRecord,
+    RequestRecord, SignalsRecord, StreamRank, Synchronous,
+};
+
+/// One schema step.
+pub struct Migration {
+    pub name: &'static str,
+    pub sql: &'static str,
+}
+
+/// The schema, in order; `PRAGMA user_version` is the number applied. Add a
+/// table by appending one entry; never edit an entry that has shipped.
+pub const MIGRATIONS: &[Migration] = &[Migration {
+    name: "requests, candidates and stream ranks",
+    sql: "
+        CREATE TABLE requests (
+            request_id    TEXT PRIMARY KEY,
+            time_us       INTEGER NOT NULL,
+            method        TEXT NOT NULL,
+            peer          TEXT,
+            identity      TEXT,
+            model_id      TEXT NOT NULL,
+            model_version TEXT NOT NULL,
+            batch_label   TEXT NOT NULL,
+            confidence    REAL NOT NULL,
+            stream_id     TEXT,
+            chunk         INTEGER,
+            n_candidates  INTEGER NOT NULL,
+            n_scored      INTEGER NOT NULL,
+            n_flagged     INTEGER NOT NULL,
+            n_refused     INTEGER NOT NULL,
+            n_rejected    INTEGER NOT NULL
+        ) STRICT;
+        CREATE INDEX requests_by_stream ON requests(stream_id) WHERE stream_id IS NOT NULL;
+        CREATE TABLE candidates (
+            record_id          TEXT PRIMARY KEY,
+            request_id         TEXT NOT NULL REFERENCES requests(request_id),
+            position           INTEGER NOT NULL,
+            candidate_id       TEXT NOT NULL,
+            status             TEXT NOT NULL
+                CHECK (status IN ('scored', 'flagged', 'refused', 'rejected')),
+            prediction         REAL,
+            lower              REAL,
+            upper              REAL,
+            confidence         REAL NOT NULL,
+            calibration        TEXT,
+            verdict            TEXT CHECK (verdict IN ('inside', 'border', 'outside')),
+            knn_distance       REAL,
+            typicality         REAL,
+            beyond_z_threshold INTEGER,
+            leverage           REAL,
+            pca_residual       REAL,
+            out_of_range       TEXT,
+            notes              TEXT,
+            rank               INTEGER NOT NULL,
+            reason             TEXT NOT NULL,
+            descriptor_sha256  TEXT NOT NULL,
+            descriptors        BLOB
+        ) STRICT;
+        CREATE INDEX candidates_by_request ON candidates(request_id, position);
+        CREATE INDEX candidates_by_candidate ON candidates(candidate_id);
+        CREATE TABLE stream_ranks (
+            record_id TEXT PRIMARY KEY REFERENCES candidates(record_id),
+            stream_id TEXT NOT NULL,
+            rank      INTEGER NOT NULL
+        ) STRICT;
+        CREATE INDEX stream_ranks_by_stream ON stream_ranks(stream_id, rank);
+    ",
+}];
+
+/// Opens (creating if needed) the database for writing and brings its
+/// schema up to date.
+pub fn open_for_writing(path: &Path, synchronous: Synchronous) -> Result<Connection, Error> {
+    let open_err = |source| Error::Open {
+        path: path.to_path_buf(),
+        source,
+    };
+    let conn = Connection::open(path).map_err(open_err)?;
+    conn.busy_timeout(Duration::from_secs(5))
+        .map_err(open_err)?;
+    // journal_mode returns the mode in force; anything but WAL (e.g. on a
+    // file system without shared memory) would silently lose concurrency.
+    let mode: String = conn
+        .query_row("PRAGMA journal_mode = WAL", [], |r| r.get(0))
+        .map_err(open_err)?;
+    if !mode.eq_ignore_ascii_case("wal") {
+        return Err(open_err(rusqlite::Error::InvalidParameterName(format!(
+            "journal_mode is {mode}, WAL is required"
+        ))));
+    }
+    let sync = match synchronous {
+        Synchronous::Full => "FULL",
+        Synchronous::Normal => "NORMAL",
+    };
+    conn.pragma_update(None, "synchronous", sync)
+        .map_err(open_err)?;
+    conn.pragma_update(None, "foreign_keys", "ON")
+        .map_err(open_err)?;
+    migrate(&conn, path)?;
+    Ok(conn)
+}
+
+/// Applies the migrations not yet applied, each in its own transaction with
+/// its version bump.
+pub fn migrate(conn: &Connection, path: &Path) -> Result<(), Error> {
+    let found: i64 = conn
+        .query_row("PRAGMA user_version", [], |r| r.get(0))
+        .map_err(|source| Error::Open {
+            path: path.to_path_buf(),
+            source,
+        })?;
+    if found > MIGRATIONS.len() as i64 {
+        return Err(Error::NewerSchema {
+            path: path.to_path_buf(),
+            found,
+            known: MIGRATIONS.len(),
+        });
+    }
+    for (i, m) in MIGRATIONS.iter().enumerate().skip(found.max(0) as usize) {
+        let version = i + 1;
+        let fail = |source| Error::Migrate {
+            path: path.to_path_buf(),
+            version,
+            name: m.name,
+            source,
+        };
+        let tx = conn.unchecked_transaction().map_err(fail)?;
+        tx.execute_batch(m.sql).map_err(fail)?;
+        tx.pragma_update(None, "user_version", version as i64)
+            .map_err(fail)?;
+        tx.commit().map_err(fail)?;
+    }
+    Ok(())
+}
+
+/// The schema version of an open database.
+pub fn schema_version(conn: &Connection) -> Result<i64, Error> {
+    conn.query_row("PRAGMA user_version", [], |r| r.get(0))
+        .map_err(|source| Error::Read { source })
+}
+
+/// The largest request id in the store, as the number it encodes.
+pub fn max_request_id(conn: &Connection) -> Result<u64, Error> {
+    let id: Option<String> = conn
+        .query_row("SELECT max(request_id) FROM requests", [], |r| r.get(0))
+        .map_err(|source| Error::Read { source })?;
+    Ok(id
+        .as_deref()
+        .and_then(super::ids::parse_request_id)
+        .unwrap_or(0))
+}
+
+/// Writes the entries inside `tx` (the caller commits).
+pub fn write_entries(tx: &Transaction<'_>, entries: &[&Entry]) -> rusqlite::Result<()> {
+    let mut req = tx.prepare_cached(
+        "INSERT INTO requests (request_id, time_us, method, peer, identity, model_id,
+             model_version, batch_label, confidence, stream_id, chunk, n_candidates, n_scored,
+             n_flagged, n_refused, n_rejected)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16)",
+    )?;
+    let mut cand = tx.prepare_cached(
+        "INSERT INTO candidates (record_id, request_id, position, candidate_id, status,
+             prediction, lower, upper, confidence, calibration, verdict, knn_distance,
+             typicality, beyond_z_threshold, leverage, pca_residual, out_of_range, notes, rank,
+             reason, descriptor_sha256, descriptors)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17,
+             ?18, ?19, ?20, ?21, ?22)",
+    )?;
+    let mut rank = tx.prepare_cached(
+        "INSERT INTO stream_ranks (record_id, stream_id, rank) VALUES (?1, ?2, ?3)",
+    )?;
+    for e in entries {
+        let r = &e.request;
+        req.execute(params![
+            r.request_id,
+            r.time_us,
+            r.method.name(),
+            r.peer,
+            r.identity,
+            r.model_id,
+            r.model_version,
+            r.batch_label,
+            r.confidence,
+            r.stream_id,
+            r.chunk,
+            r.counts.candidates,
+            r.counts.scored,
+            r.counts.flagged,
+            r.counts.refused,
+            r.counts.rejected,
+        ])?;
+        for c in &e.candidates {
+            let s = c.signals.as_ref();
+            let out_of_range = s
+                .map(|s| serde_json::to_string(&s.out_of_range))
+                .transpose()
+                .map_err(|e| rusqlite::Error::ToSqlConversionFailure(Box::new(e)))?;
+            let notes = s
+                .map(|s| serde_json::to_string(&s.notes))
+                .transpose()
+                .map_err(|e| rusqlite::Error::ToSqlConversionFailure(Box::new(e)))?;
+            let blob = c.descriptors.as_ref().map(|d| f64s_to_le_bytes(d));
+            cand.execute(params![
+                c.record_id,
+                c.request_id,
+                c.position,
+                c.candidate_id,
+                c.status.name(),
+                c.prediction,
+                c.lower,
+                c.upper,
+                c.confidence,
+                c.calibration,
+                s.map(|s| s.verdict.as_str()),
+                s.map(|s| s.knn_distance),
+                s.map(|s| s.typicality),
+                s.map(|s| s.beyond_z_threshold),
+                s.map(|s| s.leverage),
+                s.map(|s| s.pca_residual),
+                out_of_range,
+                notes,
+                c.rank,
+                c.reason,
+                c.descriptor_sha256,
+                blob,
+            ])?;
+        }
+        for sr in &e.stream_ranks {
+            rank.execute(params![sr.record_id, sr.stream_id, sr.rank])?;
+        }
+    }
+    Ok(())
+}
+
+pub fn f64s_to_le_bytes(values: &[f64]) -> Vec<u8> {
+    let mut out = Vec::with_capacity(values.len() * 8);
+    for v in values {
+        out.extend_from_slice(&v.to_le_bytes());
+    }
+    out
+}
+
+/// Read access to the store, for tests and review. Opens its own
+/// connection; in WAL mode reading never blocks the writer.
+pub struct AuditReader {
+    conn: Connection,
+    path: PathBuf,
+}
+
+const REQUEST_COLUMNS: &str = "request_id, time_us, method, peer, identity, model_id, \
+     model_version, batch_label, confidence, stream_id, chunk, n_candidates, n_scored, \
+     n_flagged, n_refused, n_rejected";
+
+const CANDIDATE_COLUMNS: &str = "record_id, request_id, position, candidate_id, status, \
+     prediction, lower, upper, confidence, calibration, verdict, knn_distance, typicality, \
+     beyond_z_threshold, leverage, pca_residual, out_of_range, notes, rank, reason, \
+     descriptor_sha256, descriptors";
+
+impl AuditReader {
+    pub fn open(path: &Path) -> Result<AuditReader, Error> {
+        let conn = Connection::open_with_flags(
+            path,
+            OpenFlags::SQLITE_OPEN_READ_ONLY | OpenFlags::SQLITE_OPEN_NO_MUTEX,
+        )
+        .map_err(|source| Error::Open {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        conn.busy_timeout(Duration::from_secs(5))
+            .map_err(|source| Error::Open {
+                path: path.to_path_buf(),
+                source,
+            })?;
+        Ok(AuditReader {
+            conn,
+            path: path.to_path_buf(),
+        })
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    pub fn schema_version(&self) -> Result<i64, Error> {
+        schema_version(&self.conn)
+    }
+
+    pub fn request(&self, request_id: &str) -> Result<Option<RequestRecord>, Error> {
+        let sql = format!("SELECT {REQUEST_COLUMNS} FROM requests WHERE request_id = ?1");
+        let raw = self
+            .conn
+            .query_row(&sql, [request_id], raw_request)
+            .optional()
+            .map_err(|source| Error::Read { source })?;
+        raw.map(RawRequest::into_record).transpose()
+    }
+
+    /// Every request, oldest first.
+    pub fn requests(&self) -> Result<Vec<RequestRecord>, Error> {
+        let sql = format!("SELECT {REQUEST_COLUMNS} FROM requests ORDER BY request_id");
+        let mut stmt = self
+            .conn
+            .prepare(&sql)
+            .map_err(|source| Error::Read { source })?;
+        let rows = stmt
+            .query_map([], raw_request)
+            .map_err(|source| Error::Read { source })?;
+        let mut out = Vec::new();
+        for raw in rows {
+            out.push(
+                raw.map_err(|source| Error::Read { source })?
+                    .into_record()?,
+            );
+        }
+        Ok(out)
+    }
+
+    pub fn candidate(&self, record_id: &str) -> Result<Option<CandidateRecord>, Error> {
+        let sql = format!("SELECT {CANDIDATE_COLUMNS} FROM candidates WHERE record_id = ?1");
+        let raw = self
+            .conn
+            .query_row(&sql, [record_id], raw_candidate)
+            .optional()
+            .map_err(|source| Error::Read { source })?;
+        raw.map(RawCandidate::into_record).transpose()
+    }
+
+    /// The candidates of one request, in request order.
+    pub fn candidates_of(&self, request_id: &str) -> Result<Vec<CandidateRecord>, Error> {
+        let sql = format!(
+            "SELECT {CANDIDATE_COLUMNS} FROM candidates WHERE request_id = ?1 ORDER BY position"
+        );
+        let mut stmt = self
+            .conn
+            .prepare(&sql)
+            .map_err(|source| Error::Read { source })?;
+        let rows = stmt
+            .query_map([request_id], raw_candidate)
+            .map_err(|source| Error::Read { source })?;
+        let mut out = Vec::new();
+        for raw in rows {
+            out.push(
+                raw.map_err(|source| Error::Read { source })?
+                    .into_record()?,
+            );
+        }
+        Ok(out)
+    }
+
+    /// The overall ranking of a stream, best first.
+    pub fn stream_ranks(&self, stream_id: &str) -> Result<Vec<StreamRank>, Error> {
+        let mut stmt = self
+            .conn
+            .prepare(
+                "SELECT record_id, stream_id, rank FROM stream_ranks WHERE stream_id = ?1 \
+                 ORDER BY rank",
+            )
+            .map_err(|source| Error::Read { source })?;
+        let rows = stmt
+            .query_map([stream_id], |r| {
+                Ok(StreamRank {
+                    record_id: r.get(0)?,
+                    stream_id: r.get(1)?,
+                    rank: r.get(2)?,
+                })
+            })
+            .map_err(|source| Error::Read { source })?;
+        rows.collect::<rusqlite::Result<Vec<_>>>()
+            .map_err(|source| Error::Read { source })
+    }
+
+    /// Number of candidate records in the store.
+    pub fn candidate_count(&self) -> Result<u64, Error> {
+        let n: i64 = self
+            .conn
+            .query_row("SELECT count(*) FROM candidates", [], |r| r.get(0))
+            .map_err(|source| Error::Read { source })?;
+        Ok(n.max(0) as u64)
+    }
+}
+
+struct RawRequest {
+    record: RequestRecord,
+    method: String,
+}
+
+impl RawRequest {
+    fn into_record(self) -> Result<RequestRecord, Error> {
+        let mut record = self.record;
+        record.method = Method::parse(&self.method).ok_or_else(|| Error::Corrupt {
+            record_id: record.request_id.clone(),
+            what: "method",
+            detail: self.method.clone(),
+        })?;
+        Ok(record)
+    }
+}
+
+fn raw_request(r: &rusqlite::Row<'_>) -> rusqlite::Result<RawRequest> {
+    Ok(RawRequest {
+        method: r.get(2)?,
+        record: RequestRecord {
+            request_id: r.get(0)?,
+            time_us: r.get(1)?,
+            method: Method::Score,
+            peer: r.get(3)?,
+            identity: r.get(4)?,
+            model_id: r.get(5)?,
+            model_version: r.get(6)?,
+            batch_label: r.get(7)?,
+            confidence: r.get(8)?,
+            stream_id: r.get(9)?,
+            chunk: r.get(10)?,
+            counts: Counts {
+                candidates: r.get(11)?,
+                scored: r.get(12)?,
+                flagged: r.get(13)?,
+                refused: r.get(14)?,
+                rejected: r.get(15)?,
+            },
+        },
+    })
+}
+
+struct RawCandidate {
+    record: CandidateRecord,
+    status: String,
+    verdict: Option<String>,
+    numbers: [Option<f64>; 4],
+    beyond: Option<bool>,
+    out_of_range: Option<String>,
+    notes: Option<String>,
+    blob: Option<Vec<u8>>,
+}
+
+fn raw_candidate(r: &rusqlite::Row<'_>) -> rusqlite::Result<RawCandidate> {
+    Ok(RawCandidate {
+        status: r.get(4)?,
+        verdict: r.get(10)?,
+        numbers: [r.get(11)?, r.get(12)?, r.get(14)?, r.get(15)?],
+        beyond: r.get(13)?,
+        out_of_range: r.get(16)?,
+        notes: r.get(17)?,
+        blob: r.get(21)?,
+        record: CandidateRecord {
+            record_id: r.get(0)?,
+            request_id: r.get(1)?,
+            position: r.get(2)?,
+            candidate_id: r.get(3)?,
+            status: CandidateStatus::Rejected,
+            prediction: r.get(5)?,
+            lower: r.get(6)?,
+            upper: r.get(7)?,
+            confidence: r.get(8)?,
+            calibration: r.get(9)?,
+            signals: None,
+            rank: r.get(18)?,
+            reason: r.get(19)?,
+            descriptor_sha256: r.get(20)?,
+            descriptors: None,
+        },
+    })
+}
+
+impl RawCandidate {
+    fn into_record(self) -> Result<CandidateRecord, Error> {
+        let mut rec = self.record;
+        let corrupt = |what, detail: String| Error::Corrupt {
+            record_id: rec.record_id.clone(),
+            what,
+            detail,
+        };
+        rec.status =
+            CandidateStatus::parse(&self.status).ok_or_else(|| corrupt("status", self.status))?;
+        if let Some(verdict) = self.verdict {
+            let [knn, typ, lev, res] = self.numbers;
+            let (Some(knn_distance), Some(typicality), Some(leverage), Some(pca_residual)) =
+                (knn, typ, lev, res)
+            else {
+                return Err(corrupt("signals", "a signal is missing".into()));
+            };
+            let out_of_range: Vec<OutOfRangeRecord> =
+                serde_json::from_str(self.out_of_range.as_deref().unwrap_or("[]"))
+                    .map_err(|e| corrupt("out_of_range", e.to_string()))?;
+            let notes: Vec<String> = serde_json::from_str(self.notes.as_deref().unwrap_or("[]"))
+                .map_err(|e| corrupt("notes", e.to_string()))?;
+            rec.signals = Some(SignalsRecord {
+                verdict,
+                knn_distance,
+                typicality,
+                beyond_z_threshold: self.beyond.unwrap_or(false),
+                leverage,
+                pca_residual,
+                out_of_range,
+                notes,
+            });
+        }
+        if let Some(blob) = self.blob {
+            if blob.len() % 8 != 0 {
+                return Err(corrupt(
+                    "descriptors",
+                    format!("{} bytes is not a whole number of f64", blob.len()),
+                ));
+            }
+            rec.descriptors = Some(
+                blob.chunks_exact(8)
+                    .map(|b| f64::from_le_bytes([b[0], b[1], b[2], b[3], b[4], b[5], b[6], b[7]]))
+                    .collect(),
+            );
+        }
+        Ok(rec)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn migrations_bring_a_new_database_to_the_latest_version_once() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("a.db");
+        let conn = open_for_writing(&path, Synchronous::Full).unwrap();
+        assert_eq!(schema_version(&conn).unwrap(), MIGRATIONS.len() as i64);
+        drop(conn);
+        // Reopening applies nothing (a second CREATE TABLE would fail).
+        let conn = open_for_writing(&path, Synchronous::Normal).unwrap();
+        assert_eq!(schema_version(&conn).unwrap(), MIGRATIONS.len() as i64);
+        let mode: String = conn
+            .query_row("PRAGMA journal_mode", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(mode, "wal");
+    }
+
+    #[test]
+    fn a_database_from_a_newer_build_is_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("a.db");
+        {
+            let conn = Connection::open(&path).unwrap();
+            conn.pragma_update(None, "user_version", 99).unwrap();
+        }
+        let err = open_for_writing(&path, Synchronous::Full).unwrap_err();
+        assert!(matches!(err, Error::NewerSchema { found: 99, .. }), "{err}");
+    }
+
+    #[test]
+    fn blobs_round_trip_every_bit() {
+        let values = [0.0, -0.0, 1.5, f64::MIN_POSITIVE, -1e308, 1.0 / 3.0];
+        let bytes = f64s_to_le_bytes(&values);
+        let back: Vec<f64> = bytes
+            .chunks_exact(8)
+            .map(|b| f64::from_le_bytes(b.try_into().unwrap()))
+            .collect();
+        for (a, b) in values.iter().zip(&back) {
+            assert_eq!(a.to_bits(), b.to_bits());
+        }
+    }
+}

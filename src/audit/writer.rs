@@ -1,0 +1,378 @@
+//! The group-commit writer: one thread owns the write connection. Callers
+//! hand it an [`Entry`] over a bounded channel with a oneshot for the reply;
+//! the thread takes whatever is waiting (up to `batch_max` entries), writes
+//! it all in ONE transaction, commits, and only then replies to each caller.
+//! With `synchronous = FULL` that is one fsync per group instead of one per
+//! request, which is what makes durable-before-answer affordable.
+//!
+//! A thread rather than an async task because rusqlite is blocking; a
+//! blocking call inside the runtime would stall other requests.
+
+use std::sync::{Arc, Mutex};
+use std::thread::JoinHandle;
+use std::time::Instant;
+
+use rusqlite::Connection;
+use tokio::sync::{mpsc, oneshot};
+
+use super::sqlite::{max_request_id, open_for_writing, write_entries};
+use super::{Entry, Error, Options, RequestIds};
+
+enum Job {
+    Commit(Box<Entry>, oneshot::Sender<Result<(), Error>>),
+    Close,
+}
+
+/// What the writer did over its life.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub struct WriterStats {
+    pub transactions: u64,
+    pub entries: u64,
+    pub failed_entries: u64,
+    pub checkpoints: u64,
+}
+
+/// A handle to the writer thread; cheap to clone.
+#[derive(Clone)]
+pub struct AuditWriter {
+    tx: mpsc::Sender<Job>,
+    thread: Arc<Mutex<Option<JoinHandle<WriterStats>>>>,
+}
+
+impl AuditWriter {
+    /// Opens the store (migrating it) and starts the writer. Also returns the
+    /// request-id generator, started after the largest id in the store.
+    pub fn start(options: &Options) -> Result<(AuditWriter, RequestIds), Error> {
+        let conn = open_for_writing(&options.path, options.synchronous)?;
+        let ids = RequestIds::starting_after(max_request_id(&conn)?);
+        let (tx, rx) = mpsc::channel(options.queue_depth.max(1));
+        let loop_options = options.clone();
+        let thread = std::thread::Builder::new()
+            .name("audit-writer".into())
+            .spawn(move || run(conn, rx, &loop_options))
+            .map_err(|e| Error::WriterGone {
+                reason: format!("could not start the writer thread: {e}"),
+            })?;
+        Ok((
+            AuditWriter {
+                tx,
+                thread: Arc::new(Mutex::new(Some(thread))),
+            },
+            ids,
+        ))
+    }
+
+    /// Commits one entry; returns once it is durable (or the commit failed).
+    pub async fn commit(&self, entry: Entry) -> Result<(), Error> {
+        let (reply, answer) = oneshot::channel();
+        self.tx
+            .send(Job::Commit(Box::new(entry), reply))
+            .await
+            .map_err(|_| Error::Closed)?;
+        answer.await.map_err(|_| Error::WriterGone {
+            reason: "the writer dropped a commit without answering".into(),
+        })?
+    }
+
+    /// Commits everything handed over so far, refuses anything later, and
+    /// stops the thread. Safe to call more than once.
+    pub async fn close(&self) -> Result<WriterStats, Error> {
+        // A closed channel means an earlier close is already draining.
+        let _ = self.tx.send(Job::Close).await;
+        let handle = self.thread.lock().ok().and_then(|mut h| h.take());
+        match handle {
+            None => Ok(WriterStats::default()),
+            Some(h) => tokio::task::spawn_blocking(move || h.join())
+                .await
+                .map_err(|e| Error::WriterGone {
+                    reason: e.to_string(),
+                })?
+                .map_err(|_| Error::WriterGone {
+                    reason: "the writer thread panicked".into(),
+                }),
+        }
+    }
+}
+
+fn run(mut conn: Connection, mut rx: mpsc::Receiver<Job>, options: &Options) -> WriterStats {
+    let mut stats = WriterStats::default();
+    let mut last_checkpoint = Instant::now();
+    let batch_max = options.batch_max.max(1);
+    let mut closing = false;
+    let mut group: Vec<(Box<Entry>, oneshot::Sender<Result<(), Error>>)> =
+        Vec::with_capacity(batch_max);
+    loop {
+        // Wait for the first job, then take what else is already waiting.
+        let first = if closing {
+            rx.try_recv().ok()
+        } else {
+            rx.blocking_recv()
+        };
+        let Some(first) = first else { break };
+        let mut next = Some(first);
+        while let Some(job) = next.take() {
+            match job {
+                Job::Commit(entry, reply) => group.push((entry, reply)),
+                Job::Close => {
+                    // Senders waiting on a full queue get "closed"; what is
+                    // already queued is still committed below.
+                    closing = true;
+                    rx.close();
+                }
+            }
+            if group.len() < batch_max {
+                next = rx.try_recv().ok();
+            }
+        }
+        if group.is_empty() {
+            continue;
+        }
+        commit_group(&mut conn, &mut group, &mut stats);
+        if last_checkpoint.elapsed() >= options.checkpoint_interval {
+            checkpoint(&conn, &mut stats);
+            last_checkpoint = Instant::now();
+        }
+    }
+    checkpoint(&conn, &mut stats);
+    stats
+}
+
+/// Commits a group in one transaction. If that fails, each entry is retried
+/// alone so one bad entry cannot fail the others; each caller learns the
+/// fate of its own entry.
+fn commit_group(
+    conn: &mut Connection,
+    group: &mut Vec<(Box<Entry>, oneshot::Sender<Result<(), Error>>)>,
+    stats: &mut WriterStats,
+) {
+    let entries: Vec<&Entry> = group.iter().map(|(e, _)| e.as_ref()).collect();
+    let together = write_in_transaction(conn, &entries);
+    stats.transactions += 1;
+    match together {
+        Ok(()) => {
+            stats.entries += group.len() as u64;
+            for (_, reply) in group.drain(..) {
+                let _ = reply.send(Ok(()));
+            }
+        }
+        Err(first_error) if group.len() == 1 => {
+            stats.failed_entries += 1;
+            tracing::error!(error = %first_error, "audit commit failed");
+            for (_, reply) in group.drain(..) {
+                let _ = reply.send(Err(Error::Write {
+                    message: first_error.to_string(),
+                }));
+            }
+        }
+        Err(group_error) => {
+            tracing::warn!(error = %group_error, entries = group.len(),
+                "audit group commit failed; retrying each entry alone");
+            for (entry, reply) in group.drain(..) {
+                stats.transactions += 1;
+                let result = write_in_transaction(conn, &[entry.as_ref()]).map_err(|e| {
+                    tracing::error!(error = %e, request_id = %entry.request.request_id,
+                        "audit commit failed");
+                    Error::Write {
+                        message: e.to_string(),
+                    }
+                });
+                match result {
+                    Ok(()) => stats.entries += 1,
+                    Err(_) => stats.failed_entries += 1,
+                }
+                let _ = reply.send(result);
+            }
+        }
+    }
+}
+
+fn write_in_transaction(conn: &mut Connection, entries: &[&Entry]) -> rusqlite::Result<()> {
+    let tx = conn.transaction()?;
+    write_entries(&tx, entries)?;
+    tx.commit()
+}
+
+/// PASSIVE never blocks readers or the writer; it copies what it can so
+/// the WAL does not grow without bound under long-running readers.
+fn checkpoint(conn: &Connection, stats: &mut WriterStats) {
+    match conn.query_row("PRAGMA wal_checkpoint(PASSIVE)", [], |r| {
+        Ok((
+            r.get::<_, i64>(0)?,
+            r.get::<_, i64>(1)?,
+            r.get::<_, i64>(2)?,
+        ))
+    }) {
+        Ok((busy, log, done)) => {
+            stats.checkpoints += 1;
+            tracing::debug!(
+                busy,
+                wal_frames = log,
+                checkpointed = done,
+                "audit WAL checkpoint"
+            );
+        }
+        Err(e) => tracing::warn!(error = %e, "audit WAL checkpoint failed"),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::audit::{
+        AuditReader, CandidateRecord, CandidateStatus, Counts, Method, OutOfRangeRecord,
+        RequestRecord, SignalsRecord, StreamRank, Synchronous, descriptor_hash, record_id,
+    };
+    use std::time::Duration;
+
+    fn options(path: &std::path::Path, batch_max: usize) -> Options {
+        Options {
+            path: path.to_path_buf(),
+            synchronous: Synchronous::Full,
+            batch_max,
+            queue_depth: 16,
+            checkpoint_interval: Duration::from_millis(1),
+        }
+    }
+
+    fn entry(ids: &RequestIds, n: usize) -> Entry {
+        let (request_id, time_us) = ids.next();
+        let candidates: Vec<CandidateRecord> = (0..n)
+            .map(|i| {
+                let descriptors = vec![i as f64, -0.5, 1e-9];
+                let scored = i % 2 == 0;
+                CandidateRecord {
+                    record_id: record_id(&request_id, i),
+                    request_id: request_id.clone(),
+                    position: i as u32,
+                    candidate_id: format!("c{i}"),
+                    status: if scored {
+                        CandidateStatus::Scored
+                    } else {
+                        CandidateStatus::Rejected
+                    },
+                    prediction: scored.then_some(1.25 * i as f64),
+                    lower: scored.then_some(0.5),
+                    upper: None,
+                    confidence: 0.9,
+                    calibration: scored.then(|| "pooled".to_string()),
+                    signals: scored.then(|| SignalsRecord {
+                        verdict: "inside".into(),
+                        knn_distance: 0.3,
+                        typicality: 0.7,
+                        beyond_z_threshold: false,
+                        leverage: 0.01,
+                        pca_residual: 0.2,
+                        out_of_range: vec![OutOfRangeRecord {
+                            descriptor: "logp".into(),
+                            value: 9.0,
+                            min: 0.0,
+                            max: 5.0,
+                        }],
+                        notes: vec!["logp above range".into()],
+                    }),
+                    rank: if scored { (i / 2 + 1) as u32 } else { 0 },
+                    reason: if scored { String::new() } else { "NaN".into() },
+                    descriptor_sha256: descriptor_hash(&descriptors),
+                    descriptors: (!scored).then_some(descriptors),
+                }
+            })
+            .collect();
+        Entry {
+            request: RequestRecord {
+                request_id: request_id.clone(),
+                time_us,
+                method: Method::ScoreStream,
+                peer: Some("127.0.0.1:5000".into()),
+                identity: None,
+                model_id: "m".into(),
+                model_version: "abc".into(),
+                batch_label: "plate 7".into(),
+                confidence: 0.9,
+                stream_id: Some(request_id.clone()),
+                chunk: Some(0),
+                counts: Counts {
+                    candidates: n as u32,
+                    scored: n.div_ceil(2) as u32,
+                    flagged: 0,
+                    refused: 0,
+                    rejected: (n / 2) as u32,
+                },
+            },
+            stream_ranks: vec![StreamRank {
+                stream_id: request_id.clone(),
+                record_id: record_id(&request_id, 0),
+                rank: 1,
+            }],
+            candidates,
+        }
+    }
+
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn committed_entries_read_back_equal_and_concurrent_commits_group() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("audit.db");
+        let (writer, ids) = AuditWriter::start(&options(&path, 8)).unwrap();
+        let ids = Arc::new(ids);
+        let mut tasks = Vec::new();
+        for k in 0..40 {
+            let writer = writer.clone();
+            let e = entry(&ids, 1 + k % 5);
+            tasks.push(tokio::spawn(async move {
+                writer.commit(e.clone()).await.map(|_| e)
+            }));
+        }
+        let mut committed = Vec::new();
+        for t in tasks {
+            committed.push(t.await.unwrap().unwrap());
+        }
+        let stats = writer.close().await.unwrap();
+        assert_eq!(stats.entries, 40);
+        assert!(stats.transactions <= 40);
+        assert!(stats.checkpoints >= 1);
+
+        let reader = AuditReader::open(&path).unwrap();
+        for e in &committed {
+            let id = &e.request.request_id;
+            assert_eq!(reader.request(id).unwrap().as_ref(), Some(&e.request));
+            assert_eq!(reader.candidates_of(id).unwrap(), e.candidates);
+            let one = reader.candidate(&e.candidates[0].record_id).unwrap();
+            assert_eq!(one.as_ref(), Some(&e.candidates[0]));
+            assert_eq!(reader.stream_ranks(id).unwrap(), e.stream_ranks);
+        }
+        assert_eq!(reader.requests().unwrap().len(), 40);
+    }
+
+    #[tokio::test]
+    async fn a_failing_entry_fails_alone_and_close_refuses_later_commits() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("audit.db");
+        let (writer, ids) = AuditWriter::start(&options(&path, 8)).unwrap();
+        let good = entry(&ids, 2);
+        writer.commit(good.clone()).await.unwrap();
+        // The same request id again violates the primary key.
+        let err = writer.commit(good.clone()).await.unwrap_err();
+        assert!(matches!(err, Error::Write { .. }), "{err}");
+        writer.commit(entry(&ids, 1)).await.unwrap();
+        writer.close().await.unwrap();
+        let err = writer.commit(entry(&ids, 1)).await.unwrap_err();
+        assert!(matches!(err, Error::Closed), "{err}");
+        let reader = AuditReader::open(&path).unwrap();
+        assert_eq!(reader.requests().unwrap().len(), 2);
+    }
+
+    #[tokio::test]
+    async fn ids_continue_after_the_largest_in_the_store() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("audit.db");
+        let floor = 0x7000_0000_0000_0000u64;
+        let (writer, _) = AuditWriter::start(&options(&path, 8)).unwrap();
+        let far_future = RequestIds::starting_after(floor);
+        let e = entry(&far_future, 1);
+        writer.commit(e.clone()).await.unwrap();
+        writer.close().await.unwrap();
+        let (writer, ids) = AuditWriter::start(&options(&path, 8)).unwrap();
+        let (next, _) = ids.next();
+        assert!(next > e.request.request_id, "{next}");
+        writer.close().await.unwrap();
+    }
+}
