@@ -304,11 +304,12 @@ fn gemm(reps: usize) -> Value {
     Value::Array(out)
 }
 
-/// `DIR [--reps N] [--queries N] [--only gemm,score,fit]`; `cargo bench`
+/// `DIR [--reps N] [--fit-reps N] [--queries N] [--only gemm,score,fit]`; `cargo bench`
 /// adds a bare `--bench`, which is skipped.
 struct Args {
     dir: PathBuf,
     reps: usize,
+    fit_reps: usize,
     n_queries: usize,
     only: Option<String>,
 }
@@ -317,6 +318,7 @@ fn parse_args() -> Args {
     let mut args = Args {
         dir: PathBuf::from("target/comparison"),
         reps: 3,
+        fit_reps: 3,
         n_queries: 100_000,
         only: None,
     };
@@ -329,6 +331,7 @@ fn parse_args() -> Args {
     while let Some(a) = it.next() {
         match a.as_str() {
             "--reps" => args.reps = count("--reps", it.next()),
+            "--fit-reps" => args.fit_reps = count("--fit-reps", it.next()),
             "--queries" => args.n_queries = count("--queries", it.next()),
             "--only" => args.only = it.next(),
             "--bench" => {}
@@ -342,6 +345,7 @@ fn main() {
     let Args {
         dir,
         reps,
+        fit_reps,
         n_queries,
         only,
     } = parse_args();
@@ -358,7 +362,7 @@ fn main() {
         result["scoring"] = scoring(&dir, reps, n_queries);
     }
     if want("fit") {
-        result["fit"] = fit_search(&dir, reps);
+        result["fit"] = fit_search(&dir, fit_reps);
     }
     let path = dir.join("plumbline.json");
     std::fs::write(&path, serde_json::to_string(&result).expect("JSON of plain values"))

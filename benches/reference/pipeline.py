@@ -31,7 +31,7 @@ grid with the one-standard-error rule (Hastie, Tibshirani & Friedman,
 *Elements of Statistical Learning*, §7.10) as its refit rule, then the same
 final selection on all rows.
 
-Usage: python3 benches/reference/pipeline.py DIR [--reps N]
+Usage: python3 benches/reference/pipeline.py DIR [--reps N] [--fit-reps N]
 """
 
 import argparse
@@ -288,6 +288,7 @@ def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("dir", type=pathlib.Path)
     ap.add_argument("--reps", type=int, default=3)
+    ap.add_argument("--fit-reps", type=int, default=None)
     ap.add_argument("--only", default="score,fit")
     args = ap.parse_args()
     ours = json.loads((args.dir / "plumbline.json").read_text())
@@ -296,7 +297,7 @@ def main():
     if "score" in parts and "scoring" in ours:
         out["scoring"] = scoring(ours["scoring"], args.dir, args.reps)
     if "fit" in parts and "fit" in ours:
-        out["fit"] = fit(ours["fit"], args.dir, args.reps)
+        out["fit"] = fit(ours["fit"], args.dir, args.fit_reps or args.reps)
     (args.dir / "reference.json").write_text(json.dumps(out, indent=1))
     print(f"wrote {args.dir / 'reference.json'}", file=sys.stderr)
 
