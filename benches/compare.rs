@@ -197,7 +197,9 @@ fn scoring(dir: &Path, reps: usize, n_queries: usize) -> Value {
         let t = Instant::now();
         let model = scoring_model(x_train, &y_train, &folds, hyper);
         let assemble_s = t.elapsed().as_secs_f64();
-        eprintln!("scoring {name}: assembled in {assemble_s:.2} s; timing {reps} × {n_queries} queries");
+        eprintln!(
+            "scoring {name}: assembled in {assemble_s:.2} s; timing {reps} × {n_queries} queries"
+        );
         let seconds = time_reps(reps, || {
             std::hint::black_box(model.score(queries, CONFIDENCE));
         });
@@ -262,7 +264,10 @@ fn fit_search(dir: &Path, reps: usize) -> Value {
         )
         .expect("nested CV on synthetic data")
     };
-    eprintln!("fit: timing {reps} nested 5 × 5 searches over {} settings", grid.points.len());
+    eprintln!(
+        "fit: timing {reps} nested 5 × 5 searches over {} settings",
+        grid.points.len()
+    );
     let mut last = None;
     let seconds = time_reps(reps, || last = Some(run()));
     let v = last.unwrap_or_else(run);
@@ -350,7 +355,10 @@ fn main() {
         only,
     } = parse_args();
     std::fs::create_dir_all(&dir).expect("create the output folder");
-    let want = |part: &str| only.as_deref().is_none_or(|o| o.split(',').any(|p| p == part));
+    let want = |part: &str| {
+        only.as_deref()
+            .is_none_or(|o| o.split(',').any(|p| p == part))
+    };
     let mut result = json!({
         "threads": rayon::current_num_threads(),
         "reps": reps,
@@ -365,7 +373,10 @@ fn main() {
         result["fit"] = fit_search(&dir, fit_reps);
     }
     let path = dir.join("plumbline.json");
-    std::fs::write(&path, serde_json::to_string(&result).expect("JSON of plain values"))
-        .expect("write plumbline.json");
+    std::fs::write(
+        &path,
+        serde_json::to_string(&result).expect("JSON of plain values"),
+    )
+    .expect("write plumbline.json");
     eprintln!("wrote {}", path.display());
 }

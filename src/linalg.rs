@@ -112,10 +112,22 @@ pub fn rbf_kernel_times(
 ) -> Array2<f64> {
     use rayon::prelude::*;
     assert_eq!(a.ncols(), b.ncols(), "rbf_kernel_times: row lengths differ");
-    assert_eq!(b.nrows(), c.nrows(), "rbf_kernel_times: B and C differ in rows");
-    assert_eq!(b.nrows(), b_norms.len(), "rbf_kernel_times: one norm per row of B");
+    assert_eq!(
+        b.nrows(),
+        c.nrows(),
+        "rbf_kernel_times: B and C differ in rows"
+    );
+    assert_eq!(
+        b.nrows(),
+        b_norms.len(),
+        "rbf_kernel_times: one norm per row of B"
+    );
     let (rows, n, m) = (a.nrows(), b.nrows(), c.ncols());
-    let (a, b, c) = (a.as_standard_layout(), b.as_standard_layout(), c.as_standard_layout());
+    let (a, b, c) = (
+        a.as_standard_layout(),
+        b.as_standard_layout(),
+        c.as_standard_layout(),
+    );
     let (a, bt, c) = (view(&a), view(&b).transpose(), view(&c));
     let mut out = vec![0.0f64; rows * m];
     out.par_chunks_mut(KERNEL_BLOCK_ROWS * m.max(1))
@@ -245,7 +257,11 @@ mod tests {
                         (-gamma * d).exp() * c[[r, j]]
                     })
                     .sum();
-                assert!((got[[i, j]] - brute).abs() < 1e-12, "{i},{j}: {} vs {brute}", got[[i, j]]);
+                assert!(
+                    (got[[i, j]] - brute).abs() < 1e-12,
+                    "{i},{j}: {} vs {brute}",
+                    got[[i, j]]
+                );
             }
         }
         let empty = rbf_kernel_times(
