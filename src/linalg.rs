@@ -76,19 +76,78 @@ pub fn matmul_t(a: ArrayView2<f64>, b: ArrayView2<f64>) -> Array2<f64> {
 
 fn matmul_faer(a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Array2<f64> {
     let (m, k, n) = (a.nrows(), a.ncols(), b.ncols());
+    let mut out = vec![0.0f64; m * n];
+    matmul_into(a, b, &mut out, par_for(m * n * k));
+    Array2::from_shape_vec((m, n), out).expect("buffer has m·n elements")
+}
+
+/// A·B written into `out`, row-major m × n.
+fn matmul_into(a: MatRef<'_, f64>, b: MatRef<'_, f64>, out: &mut [f64], par: Par) {
+    let (m, n) = (a.nrows(), b.ncols());
     // Written as the transpose (Cᵀ = Bᵀ·Aᵀ) into a column-major buffer, which
     // is exactly the row-major layout ndarray wants: no copy back.
-    let mut out = vec![0.0f64; m * n];
-    let ct = MatMut::from_column_major_slice_mut(&mut out, n, m);
-    faer::linalg::matmul::matmul(
-        ct,
-        Accum::Replace,
-        b.transpose(),
-        a.transpose(),
-        1.0,
-        par_for(m * n * k),
+    let ct = MatMut::from_column_major_slice_mut(out, n, m);
+    faer::linalg::matmul::matmul(ct, Accum::Replace, b.transpose(), a.transpose(), 1.0, par);
+}
+
+/// Query rows per block of [`rbf_kernel_times`]: the block's kernel rows
+/// (rows × n) are used while still in cache, and blocks are shared between
+/// the cores whole, so each GEMM runs on one core without synchronisation.
+const KERNEL_BLOCK_ROWS: usize = 128;
+
+/// k(a, B)·C for the RBF kernel k(a, b) = exp(−γ‖a − b‖²) without forming
+/// the whole |a| × |B| kernel: for each block of rows of `a`, one GEMM for
+/// the cross products a·Bᵀ, the distance-to-kernel transform in place,
+/// and one GEMM with `c` (|B| × m). Blocks run in parallel on the rayon
+/// pool. `b_norms` are the squared row norms of `b`.
+///
+/// This is the whole of kernel ridge batch scoring: one kernel row per
+/// query serves every column of `c` (the full model and the fold models).
+pub fn rbf_kernel_times(
+    a: ArrayView2<f64>,
+    b: ArrayView2<f64>,
+    b_norms: &Array1<f64>,
+    gamma: f64,
+    c: ArrayView2<f64>,
+) -> Array2<f64> {
+    use rayon::prelude::*;
+    assert_eq!(a.ncols(), b.ncols(), "rbf_kernel_times: row lengths differ");
+    assert_eq!(
+        b.nrows(),
+        c.nrows(),
+        "rbf_kernel_times: B and C differ in rows"
     );
-    Array2::from_shape_vec((m, n), out).expect("buffer has m·n elements")
+    assert_eq!(
+        b.nrows(),
+        b_norms.len(),
+        "rbf_kernel_times: one norm per row of B"
+    );
+    let (rows, n, m) = (a.nrows(), b.nrows(), c.ncols());
+    let (a, b, c) = (
+        a.as_standard_layout(),
+        b.as_standard_layout(),
+        c.as_standard_layout(),
+    );
+    let (a, bt, c) = (view(&a), view(&b).transpose(), view(&c));
+    let mut out = vec![0.0f64; rows * m];
+    out.par_chunks_mut(KERNEL_BLOCK_ROWS * m.max(1))
+        .enumerate()
+        .for_each_init(Vec::new, |kernel: &mut Vec<f64>, (block, out)| {
+            let start = block * KERNEL_BLOCK_ROWS;
+            let len = (rows - start).min(KERNEL_BLOCK_ROWS);
+            let a = a.subrows(start, len);
+            kernel.resize(len * n, 0.0);
+            matmul_into(a, bt, kernel, Par::Seq);
+            for (i, row) in kernel.chunks_exact_mut(n).enumerate() {
+                let ai: f64 = a.row(i).iter().map(|v| v * v).sum();
+                for (v, bj) in row.iter_mut().zip(b_norms.iter()) {
+                    *v = (-gamma * (ai + bj - 2.0 * *v).max(0.0)).exp();
+                }
+            }
+            let k = MatRef::from_row_major_slice(kernel, len, n);
+            matmul_into(k, c, out, Par::Seq);
+        });
+    Array2::from_shape_vec((rows, m), out).expect("buffer has rows·m elements")
 }
 
 /// Squared row norms.
@@ -176,6 +235,43 @@ mod tests {
         }
         assert!(vals.windows(2).into_iter().all(|w| w[0] <= w[1]));
         assert_eq!(vecs.dim(), (2, 2));
+    }
+
+    /// Brute-force twin of the blocked path: the kernel from explicit
+    /// loops, times C by explicit loops, over more rows than one block and
+    /// a ragged last block.
+    #[test]
+    fn rbf_kernel_times_matches_explicit_loops() {
+        let (rows, n, p, m) = (2 * KERNEL_BLOCK_ROWS + 37, 53, 9, 4);
+        let a = random(rows, p, 6);
+        let b = random(n, p, 7);
+        let c = random(n, m, 8);
+        let gamma = 0.3;
+        let got = rbf_kernel_times(a.view(), b.view(), &row_sq_norms(b.view()), gamma, c.view());
+        assert_eq!(got.dim(), (rows, m));
+        for i in 0..rows {
+            for j in 0..m {
+                let brute: f64 = (0..n)
+                    .map(|r| {
+                        let d: f64 = (0..p).map(|q| (a[[i, q]] - b[[r, q]]).powi(2)).sum();
+                        (-gamma * d).exp() * c[[r, j]]
+                    })
+                    .sum();
+                assert!(
+                    (got[[i, j]] - brute).abs() < 1e-12,
+                    "{i},{j}: {} vs {brute}",
+                    got[[i, j]]
+                );
+            }
+        }
+        let empty = rbf_kernel_times(
+            Array2::zeros((0, p)).view(),
+            b.view(),
+            &row_sq_norms(b.view()),
+            gamma,
+            c.view(),
+        );
+        assert_eq!(empty.dim(), (0, m));
     }
 
     #[test]

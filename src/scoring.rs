@@ -4,6 +4,7 @@
 //! their answers agree to the last bit.
 
 use ndarray::ArrayView2;
+use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use crate::conformal::Interval;
@@ -142,15 +143,23 @@ impl ScoringModel {
         let x_std = self.standardizer.transform(x_raw);
         let predictions = self.predictor.predict(x_std.view());
         let domain = self.domain.assess(x_std.view(), x_raw);
-        for (row, signals) in predictions.rows().into_iter().zip(domain) {
-            let folds = row.slice(ndarray::s![1..]).to_vec();
-            let interval = self.cvplus.interval(&folds, confidence, signals.verdict);
-            out.push(CandidateScore {
-                prediction: row[0],
-                interval,
-                domain: signals,
-            });
-        }
+        // Each interval is an independent rank search: shared between the
+        // cores; `collect` keeps the input order.
+        let scored: Vec<CandidateScore> = domain
+            .into_par_iter()
+            .enumerate()
+            .map(|(i, signals)| {
+                let row = predictions.row(i);
+                let folds = row.slice(ndarray::s![1..]).to_vec();
+                let interval = self.cvplus.interval(&folds, confidence, signals.verdict);
+                CandidateScore {
+                    prediction: row[0],
+                    interval,
+                    domain: signals,
+                }
+            })
+            .collect();
+        out.extend(scored);
     }
 }
 

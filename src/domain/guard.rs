@@ -5,6 +5,7 @@
 use std::sync::Arc;
 
 use ndarray::{Array2, ArrayView1, ArrayView2, Axis};
+use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use super::knn::{self, NeighbourIndex};
@@ -116,7 +117,9 @@ impl DomainGuard {
         assert_eq!(x_raw.ncols(), d, "assess: raw rows have the wrong length");
         assert_eq!(x_std.nrows(), x_raw.nrows(), "assess: row counts differ");
         let (scores, residuals) = self.state.pca.scores_and_residuals(x_std);
+        // Rows are independent tree queries: shared between the cores.
         (0..x_std.nrows())
+            .into_par_iter()
             .map(|i| {
                 let finite = x_std
                     .row(i)
