@@ -189,7 +189,8 @@ pub fn fit(
         compare_random_split: true,
     };
     let grids = options.grids(table.descriptor_names.len());
-    let validation = validate::validate_with_models(x_raw, y.view(), &design, &grids, &settings, progress)?;
+    let validation =
+        validate::validate_with_models(x_raw, y.view(), &design, &grids, &settings, progress)?;
     watch.lap("nested cross-validation");
 
     let selection = &validation.final_selection;
@@ -217,7 +218,16 @@ pub fn fit(
         descriptor_names: table.descriptor_names.clone(),
         default_confidence: options.default_confidence,
     };
-    let report = build_report(table, data_path, options, &validation, &assembled, coverage, &watch);
+    let mut report = build_report(
+        table,
+        data_path,
+        options,
+        &validation,
+        &assembled,
+        coverage,
+        &watch,
+    );
+    report.cautions = fit_cautions(&report);
     let card = build_card(table, options, &validation, &report);
     let model = ScoringModel {
         info,
@@ -226,7 +236,12 @@ pub fn fit(
         cvplus: assembled.cvplus,
         domain: assembled.guard,
     };
-    Ok(FitOutcome { model, card, report, training_y: y.to_vec() })
+    Ok(FitOutcome {
+        model,
+        card,
+        report,
+        training_y: y.to_vec(),
+    })
 }
 
 fn fold_design(table: &Table, options: &FitOptions) -> Result<FoldDesign, Error> {
@@ -234,15 +249,28 @@ fn fold_design(table: &Table, options: &FitOptions) -> Result<FoldDesign, Error>
         SplitSpec::Random => FoldDesign::Random,
         SplitSpec::Cluster => {
             let std = crate::space::Standardizer::fit(table.x.view());
-            FoldDesign::clusters(std.transform(table.x.view()).view(), options.folds, options.seed, None)?
+            FoldDesign::clusters(
+                std.transform(table.x.view()).view(),
+                options.folds,
+                options.seed,
+                None,
+            )?
         }
         SplitSpec::Group(c) => {
-            let groups = table.groups.as_ref().ok_or_else(|| Error::MissingSplitColumn(c.clone()))?;
+            let groups = table
+                .groups
+                .as_ref()
+                .ok_or_else(|| Error::MissingSplitColumn(c.clone()))?;
             FoldDesign::groups(groups)
         }
         SplitSpec::Time(c) => {
-            let times = table.times.as_ref().ok_or_else(|| Error::MissingSplitColumn(c.clone()))?;
-            FoldDesign::Time { times: times.clone() }
+            let times = table
+                .times
+                .as_ref()
+                .ok_or_else(|| Error::MissingSplitColumn(c.clone()))?;
+            FoldDesign::Time {
+                times: times.clone(),
+            }
         }
     })
 }
@@ -251,34 +279,47 @@ fn fold_design(table: &Table, options: &FitOptions) -> Result<FoldDesign, Error>
 /// inner fold models (at the inner-chosen setting) and their inner
 /// out-of-fold residuals, evaluated on the outer-test rows that took no
 /// part in any of it. Pooled calibration: inner rows carry no verdicts.
-fn nested_coverage(validation: &Validation, y: ArrayView1<f64>) -> Result<Vec<report::CoveragePoint>, Error> {
+fn nested_coverage(
+    validation: &Validation,
+    y: ArrayView1<f64>,
+) -> Result<Vec<report::CoveragePoint>, Error> {
     let mut parts = Vec::new();
     for outer in &validation.chosen().outer {
         let residuals: Vec<f64> = outer.inner_residuals.iter().map(|r| r.abs()).collect();
         let verdicts = vec![Verdict::Inside; residuals.len()];
-        let cv = CvPlus::new(&outer.inner_folds.fold_of, outer.inner_folds.k, &residuals, &verdicts, usize::MAX)?;
+        let cv = CvPlus::new(
+            &outer.inner_folds.fold_of,
+            outer.inner_folds.k,
+            &residuals,
+            &verdicts,
+            usize::MAX,
+        )?;
         let observed: Vec<f64> = outer.test_rows.iter().map(|&r| y[r]).collect();
         let test_verdicts = vec![Verdict::Inside; observed.len()];
-        parts.push(cv.empirical_coverage(outer.inner_test_predictions.view(), &observed, &test_verdicts, &COVERAGE_LEVELS)?);
+        parts.push(cv.empirical_coverage(
+            outer.inner_test_predictions.view(),
+            &observed,
+            &test_verdicts,
+            &COVERAGE_LEVELS,
+        )?);
     }
     Ok(crate::conformal::Coverage::pool(&parts)
         .into_iter()
-        .map(|c| report::CoveragePoint { nominal: c.nominal, empirical: c.empirical, n: c.n })
+        .map(|c| report::CoveragePoint {
+            nominal: c.nominal,
+            empirical: c.empirical,
+            n: c.n,
+        })
         .collect())
 }
-
-/// The cautions every card and report carries.
-pub const CAUTIONS: &[&str] = &[
-    "Predictions support prioritisation of candidates; they are not safety, dosing or regulatory decisions.",
-    "Confirm every prediction that matters by measurement in the lab, and follow local practice and regulations.",
-    "Claims hold only for candidates like the training data: heed the applicability-domain verdict.",
-];
 
 /// Columns of the fold-model membership matrix: column 0 is every row (the
 /// full model), column k + 1 every row outside fold k.
 pub fn membership(folds: &Folds) -> Array2<bool> {
     let n = folds.fold_of.len();
-    Array2::from_shape_fn((n, folds.k + 1), |(i, m)| m == 0 || folds.fold_of[i] != m - 1)
+    Array2::from_shape_fn((n, folds.k + 1), |(i, m)| {
+        m == 0 || folds.fold_of[i] != m - 1
+    })
 }
 
 /// Fits the served pipeline at the chosen setting: full model, K fold
@@ -306,13 +347,26 @@ pub fn assemble(
     // The residuals come from the very fold models that will serve, so the
     // calibration is exactly what a query meets.
     let all = predictor.predict(x_std);
-    let oof_predictions: Vec<f64> = (0..y.len()).map(|i| all[[i, folds.fold_of[i] + 1]]).collect();
-    let residuals: Vec<f64> = oof_predictions.iter().zip(y.iter()).map(|(p, y)| (y - p).abs()).collect();
+    let oof_predictions: Vec<f64> = (0..y.len())
+        .map(|i| all[[i, folds.fold_of[i] + 1]])
+        .collect();
+    let residuals: Vec<f64> = oof_predictions
+        .iter()
+        .zip(y.iter())
+        .map(|(p, y)| (y - p).abs())
+        .collect();
     let guard = DomainGuard::fit(x_std, x_raw, domain_settings)?;
     let oof_signals = crate::domain::out_of_fold(x_std, x_raw, folds, domain_settings)?;
     let verdicts: Vec<Verdict> = oof_signals.iter().map(|s| s.verdict).collect();
     let cvplus = CvPlus::new(&folds.fold_of, folds.k, &residuals, &verdicts, min_band)?;
-    Ok(Assembled { predictor, residuals, oof_predictions, guard, oof_signals, cvplus })
+    Ok(Assembled {
+        predictor,
+        residuals,
+        oof_predictions,
+        guard,
+        oof_signals,
+        cvplus,
+    })
 }
 
 /// Seconds spent per stage, in order.
@@ -324,19 +378,31 @@ pub struct Stopwatch {
 
 impl Stopwatch {
     pub fn start() -> Stopwatch {
-        Stopwatch { stages: Vec::new(), last: Some(Instant::now()) }
+        Stopwatch {
+            stages: Vec::new(),
+            last: Some(Instant::now()),
+        }
     }
     pub fn lap(&mut self, stage: &str) {
         let now = Instant::now();
-        let since = self.last.map(|t| now.duration_since(t).as_secs_f64()).unwrap_or(0.0);
+        let since = self
+            .last
+            .map(|t| now.duration_since(t).as_secs_f64())
+            .unwrap_or(0.0);
         self.stages.push((stage.to_string(), since));
         self.last = Some(now);
     }
 }
 
-
 fn claims_of(m: &validate::MetricEstimates) -> report::Claims {
-    report::Claims { mse: m.mse, rmse: m.rmse, mae: m.mae, r2: m.r2, pearson: m.pearson, spearman: m.spearman }
+    report::Claims {
+        mse: m.mse,
+        rmse: m.rmse,
+        mae: m.mae,
+        r2: m.r2,
+        pearson: m.pearson,
+        spearman: m.spearman,
+    }
 }
 
 fn build_report(
@@ -372,11 +438,18 @@ fn build_report(
     let ds = guard.settings();
     let mut counts = BTreeMap::new();
     for v in Verdict::ALL {
-        counts.insert(v.name().to_string(), assembled.oof_signals.iter().filter(|s| s.verdict == v).count());
+        counts.insert(
+            v.name().to_string(),
+            assembled
+                .oof_signals
+                .iter()
+                .filter(|s| s.verdict == v)
+                .count(),
+        );
     }
     FitReport {
         tool_version: env!("CARGO_PKG_VERSION").to_string(),
-        created_at: rfc3339_now(),
+        created_at: report::rfc3339_utc(std::time::SystemTime::now()),
         data: report::DataSummary {
             path: data_path.to_string(),
             sha256: table.sha256.clone(),
@@ -452,7 +525,7 @@ fn build_report(
             coverage,
         },
         timings: watch.stages.iter().map(|(s, t)| report::Timing { stage: s.clone(), seconds: *t }).collect(),
-        cautions: CAUTIONS.iter().map(|c| c.to_string()).collect(),
+        cautions: Vec::new(),
     }
 }
 
@@ -467,12 +540,27 @@ fn curves(cv: &validate::GridCv, chosen: usize) -> Vec<report::Curve> {
         _ => (0..points.len()).collect(),
     };
     let (parameter, x_of): (String, fn(&Hyper) -> f64) = match points[chosen] {
-        Hyper::Ridge { .. } => ("alpha".into(), |h| if let Hyper::Ridge { alpha } = h { *alpha } else { f64::NAN }),
-        Hyper::KernelRidge { gamma, .. } => (
-            format!("alpha (gamma = {gamma:.4})"),
-            |h| if let Hyper::KernelRidge { alpha, .. } = h { *alpha } else { f64::NAN },
-        ),
-        Hyper::Knn { .. } => ("k".into(), |h| if let Hyper::Knn { k } = h { *k as f64 } else { f64::NAN }),
+        Hyper::Ridge { .. } => ("alpha".into(), |h| {
+            if let Hyper::Ridge { alpha } = h {
+                *alpha
+            } else {
+                f64::NAN
+            }
+        }),
+        Hyper::KernelRidge { gamma, .. } => (format!("alpha (gamma = {gamma:.4})"), |h| {
+            if let Hyper::KernelRidge { alpha, .. } = h {
+                *alpha
+            } else {
+                f64::NAN
+            }
+        }),
+        Hyper::Knn { .. } => ("k".into(), |h| {
+            if let Hyper::Knn { k } = h {
+                *k as f64
+            } else {
+                f64::NAN
+            }
+        }),
     };
     let curve_points = keep
         .iter()
@@ -492,7 +580,12 @@ fn curves(cv: &validate::GridCv, chosen: usize) -> Vec<report::Curve> {
     }]
 }
 
-fn build_card(table: &Table, options: &FitOptions, validation: &Validation, report: &FitReport) -> Card {
+fn build_card(
+    table: &Table,
+    options: &FitOptions,
+    validation: &Validation,
+    report: &FitReport,
+) -> Card {
     Card {
         target_column: options.target_column.clone(),
         family: validation.chosen_family.name().to_string(),
@@ -511,56 +604,102 @@ fn build_card(table: &Table, options: &FitOptions, validation: &Validation, repo
         inner_folds: options.inner_folds,
         created_at: report.created_at.clone(),
         tool_version: report.tool_version.clone(),
-        cautions: report.cautions.clone(),
+        cautions: report::GENERAL_CAUTIONS
+            .iter()
+            .map(|c| c.to_string())
+            .chain(report.cautions.iter().cloned())
+            .collect(),
     }
+}
+
+/// Cautions particular to this fit, from what the validation found.
+fn fit_cautions(r: &FitReport) -> Vec<String> {
+    let mut out = Vec::new();
+    if r.claims.r2.mean <= 0.0 {
+        out.push(format!(
+            "The model shows no out-of-fold skill on the {} split (q² = {:.3}): its rankings are no better than the mean.",
+            r.settings.split, r.claims.r2.mean
+        ));
+    }
+    let y = &r.y_randomization;
+    if y.permutations > 0
+        && y.p_value > 0.05
+        && y.p_value * (y.permutations as f64 + 1.0) > 1.0 + 1e-9
+    {
+        out.push(format!(
+            "y-randomisation does not separate the model from chance (p = {:.3}).",
+            y.p_value
+        ));
+    }
+    let gap = r.random_split.r2.mean - r.claims.r2.mean;
+    let se = (r.random_split.r2.se.powi(2) + r.claims.r2.se.powi(2)).sqrt();
+    if gap > 2.0 * se && gap > 0.05 {
+        out.push(format!(
+            "A random split would claim q² {:.3}, {:.3} above the {} split: new candidates unlike the training series will fare worse than random-split figures suggest.",
+            r.random_split.r2.mean, gap, r.settings.split
+        ));
+    }
+    if !r.domain.leverage_meaningful {
+        out.push("The leverage warning h* is at least 1 (too few rows for the components): leverage is not used.".into());
+    }
+    for b in r.conformal.bands.iter().filter(|b| !b.used) {
+        out.push(format!(
+            "The {} band has {} calibration rows: its intervals use the pooled residuals.",
+            b.verdict, b.n
+        ));
+    }
+    out
 }
 
 /// A few lines for the terminal after a fit.
 pub fn summary(outcome: &FitOutcome, version: &str) -> String {
     let r = &outcome.report;
     let mut s = String::new();
-    let _ = writeln!(s, "model {} version {}: {} {}", outcome.model.info.id, version, r.selection.family, crate::cli::bundle_cmd::hyper_text(&r.selection.hyper));
+    let _ = writeln!(
+        s,
+        "model {} version {}: {} {}",
+        outcome.model.info.id,
+        version,
+        r.selection.family,
+        crate::cli::bundle_cmd::hyper_text(&r.selection.hyper)
+    );
     let c = &r.claims;
     let q = &r.random_split;
     let _ = writeln!(
         s,
         "claims ({} split, nested {}×{}): q² {:.3} ± {:.3}, RMSE {:.3} ± {:.3}, Spearman {:.3} ± {:.3}",
-        r.settings.split, r.settings.folds, r.settings.inner_folds, c.r2.mean, c.r2.se, c.rmse.mean, c.rmse.se, c.spearman.mean, c.spearman.se
+        r.settings.split,
+        r.settings.folds,
+        r.settings.inner_folds,
+        c.r2.mean,
+        c.r2.se,
+        c.rmse.mean,
+        c.rmse.se,
+        c.spearman.mean,
+        c.spearman.se
     );
-    let _ = writeln!(s, "random split would claim q² {:.3} ± {:.3}", q.r2.mean, q.r2.se);
+    let _ = writeln!(
+        s,
+        "random split would claim q² {:.3} ± {:.3}",
+        q.r2.mean, q.r2.se
+    );
     let y = &r.y_randomization;
-    let _ = writeln!(s, "y-randomisation: {} permutations, p = {:.3}", y.permutations, y.p_value);
+    let _ = writeln!(
+        s,
+        "y-randomisation: {} permutations, p = {:.3}",
+        y.permutations, y.p_value
+    );
     for p in &r.conformal.coverage {
         if (p.nominal - 0.9).abs() < 1e-9 {
-            let _ = writeln!(s, "nested-CV coverage of 90% intervals: {:.1}% of {} rows", 100.0 * p.empirical, p.n);
+            let _ = writeln!(
+                s,
+                "nested-CV coverage of 90% intervals: {:.1}% of {} rows",
+                100.0 * p.empirical,
+                p.n
+            );
         }
     }
     s
-}
-
-/// The current UTC time as RFC 3339 (seconds), from the civil-from-days
-/// algorithm of H. Hinnant ("chrono-Compatible Low-Level Date Algorithms").
-pub fn rfc3339_now() -> String {
-    let secs = std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .map(|d| d.as_secs() as i64)
-        .unwrap_or(0);
-    rfc3339(secs)
-}
-
-pub fn rfc3339(unix_seconds: i64) -> String {
-    let days = unix_seconds.div_euclid(86_400);
-    let sod = unix_seconds.rem_euclid(86_400);
-    let z = days + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z - era * 146_097;
-    let yoe = (doe - doe / 1_460 + doe / 36_524 - doe / 146_096) / 365;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let d = doy - (153 * mp + 2) / 5 + 1;
-    let m = if mp < 10 { mp + 3 } else { mp - 9 };
-    let y = yoe + era * 400 + i64::from(m <= 2);
-    format!("{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}Z", sod / 3600, sod % 3600 / 60, sod % 60)
 }
 
 #[cfg(test)]
@@ -568,18 +707,11 @@ mod tests {
     use super::*;
 
     #[test]
-    fn rfc3339_matches_known_instants() {
-        // 0 is the Unix epoch; 951782400 is 2000-02-29T00:00:00Z and
-        // 1798761599 is 2026-12-31T23:59:59Z (both checked with GNU
-        // `date -u -d @N`).
-        assert_eq!(rfc3339(0), "1970-01-01T00:00:00Z");
-        assert_eq!(rfc3339(951_782_400), "2000-02-29T00:00:00Z");
-        assert_eq!(rfc3339(1_798_761_599), "2026-12-31T23:59:59Z");
-    }
-
-    #[test]
     fn membership_leaves_out_exactly_each_fold() {
-        let folds = Folds { k: 3, fold_of: vec![0, 1, 2, 0, 1] };
+        let folds = Folds {
+            k: 3,
+            fold_of: vec![0, 1, 2, 0, 1],
+        };
         let m = membership(&folds);
         assert_eq!(m.dim(), (5, 4));
         assert!(m.column(0).iter().all(|&b| b));
@@ -593,7 +725,10 @@ mod tests {
     #[test]
     fn split_specs_parse_and_reject() {
         assert_eq!(SplitSpec::parse("cluster").unwrap(), SplitSpec::Cluster);
-        assert_eq!(SplitSpec::parse("group:series").unwrap(), SplitSpec::Group("series".into()));
+        assert_eq!(
+            SplitSpec::parse("group:series").unwrap(),
+            SplitSpec::Group("series".into())
+        );
         assert_eq!(SplitSpec::parse("time:date").unwrap().text(), "time:date");
         assert!(SplitSpec::parse("group:").is_err());
         assert!(SplitSpec::parse("clusters").is_err());

@@ -16,6 +16,7 @@ pub mod bundle;
 pub mod cli;
 pub mod conformal;
 pub mod data;
+pub mod demo;
 pub mod domain;
 pub mod fit;
 pub mod linalg;

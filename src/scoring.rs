@@ -129,7 +129,11 @@ impl ScoringModel {
         // Chunks bound the memory of the B × n kernel (or distance) block.
         for start in (0..x_raw.nrows()).step_by(SCORE_CHUNK) {
             let end = (start + SCORE_CHUNK).min(x_raw.nrows());
-            self.score_chunk(x_raw.slice(ndarray::s![start..end, ..]), confidence, &mut out);
+            self.score_chunk(
+                x_raw.slice(ndarray::s![start..end, ..]),
+                confidence,
+                &mut out,
+            );
         }
         out
     }
@@ -141,7 +145,11 @@ impl ScoringModel {
         for (row, signals) in predictions.rows().into_iter().zip(domain) {
             let folds = row.slice(ndarray::s![1..]).to_vec();
             let interval = self.cvplus.interval(&folds, confidence, signals.verdict);
-            out.push(CandidateScore { prediction: row[0], interval, domain: signals });
+            out.push(CandidateScore {
+                prediction: row[0],
+                interval,
+                domain: signals,
+            });
         }
     }
 }

@@ -336,6 +336,21 @@ fn an_empty_file_and_a_repeated_header_name_are_errors() {
 }
 
 #[test]
+fn an_unnamed_column_is_an_error_naming_its_position() {
+    // As written by a data frame saved with its row index.
+    let err = read(",id,a,y\n0,m1,1,2\n1,m2,2,3\n", &spec()).unwrap_err();
+    assert!(
+        matches!(err, Error::UnnamedColumn { position: 1 }),
+        "{err:?}"
+    );
+    let err = read("id,a,y,\nm1,1,2,\n", &spec()).unwrap_err();
+    assert!(
+        matches!(err, Error::UnnamedColumn { position: 4 }),
+        "{err:?}"
+    );
+}
+
+#[test]
 fn a_column_cannot_play_two_roles() {
     let s = TableSpec {
         group: Some("y".into()),

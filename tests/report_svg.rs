@@ -1,4 +1,5 @@
-//! Axis maths of the report's SVG helper against values worked out by hand:
+//! Axis maths of the report's SVG helper against values worked out by hand
+//! (and the report's timestamps against Python's datetime):
 //! decade and 1-2-5 ticks on log axes, positions on a log axis, "nice"
 //! linear steps (Heckbert, Graphics Gems 1990, rounding variant), tick
 //! labels, and which grids count as logarithmic.
@@ -122,4 +123,53 @@ fn geometric_grids_are_logarithmic_and_arithmetic_ones_are_not() {
     assert!(!is_logarithmic(&[1.0, 5.0])); // less than a factor of ten
     assert!(!is_logarithmic(&[0.0, 1.0, 10.0, 100.0])); // zero has no log
     assert!(!is_logarithmic(&[3.0]));
+}
+
+#[test]
+fn created_at_timestamps_are_rfc3339_utc() {
+    use plumbline::report::rfc3339_utc;
+    use std::time::{Duration, UNIX_EPOCH};
+    // Expected strings from Python's datetime.fromtimestamp(t, timezone.utc)
+    // .strftime('%Y-%m-%dT%H:%M:%SZ') on the same instants.
+    for (secs, want) in [
+        (0u64, "1970-01-01T00:00:00Z"),
+        (951_782_400, "2000-02-29T00:00:00Z"),
+        (1_700_000_000, "2023-11-14T22:13:20Z"),
+        (1_741_944_413, "2025-03-14T09:26:53Z"),
+        (4_102_444_799, "2099-12-31T23:59:59Z"),
+        (253_402_300_799, "9999-12-31T23:59:59Z"),
+    ] {
+        assert_eq!(rfc3339_utc(UNIX_EPOCH + Duration::from_secs(secs)), want);
+    }
+    assert_eq!(
+        rfc3339_utc(UNIX_EPOCH - Duration::from_secs(1)),
+        "1969-12-31T23:59:59Z"
+    );
+}
+
+#[test]
+fn plots_place_data_in_the_frame_and_skip_what_cannot_be_drawn() {
+    use plumbline::report::svg::Plot;
+    // The frame runs from x = 64 to 560 − 28 = 532 and from y = 360 − 50 =
+    // 310 (bottom) to 30 (top); on a log axis over [1, 100], 10 is halfway:
+    // 64 + (532 − 64)/2 = 298.
+    let mut p = Plot::new(Scale::log(1.0, 100.0), Scale::linear(0.0, 1.0));
+    p.points(
+        &[
+            (1.0, 0.0),
+            (100.0, 1.0),
+            (10.0, 0.5),
+            (0.0, 0.5),      // no log of zero
+            (f64::NAN, 0.5), // undefined
+        ],
+        3.0,
+        "pt",
+    );
+    let svg = p.finish("a <test> plot");
+    assert_eq!(svg.matches("<circle").count(), 3);
+    assert!(svg.contains(r#"cx="64.0" cy="310.0""#), "{svg}");
+    assert!(svg.contains(r#"cx="532.0" cy="30.0""#), "{svg}");
+    assert!(svg.contains(r#"cx="298.0" cy="170.0""#), "{svg}");
+    assert!(svg.contains("<title>a &lt;test&gt; plot</title>"));
+    assert!(svg.starts_with("<svg ") && svg.ends_with("</svg>"));
 }

@@ -4,8 +4,9 @@
 
 use std::collections::HashMap;
 
-use ndarray::Array2;
-use plumbline::validate::{Error, FoldDesign, Folds, default_n_clusters};
+use ndarray::{Array1, Array2, ArrayView2};
+use plumbline::models::{Family, Grid, GridPredictions, Hyper};
+use plumbline::validate::{Error, FoldDesign, Folds, NestedSettings, default_n_clusters, validate};
 use rand::{Rng, SeedableRng};
 use rand_xoshiro::Xoshiro256PlusPlus;
 
@@ -249,4 +250,52 @@ fn designs_split_subsets_of_rows_the_same_way() {
     assert_eq!(r, Folds::random(rows.len(), 4, 3).unwrap());
     assert_eq!(FoldDesign::Random.name(), "random");
     assert_eq!(design.name(), "time");
+}
+
+#[test]
+fn an_inner_level_without_enough_groups_says_which_outer_fold() {
+    // Six groups into 3 outer folds leave 4 groups of training rows per
+    // outer fold: too few for 5 inner folds.
+    let labels: Vec<String> = (0..60).map(|i| format!("g{}", i % 6)).collect();
+    let design = FoldDesign::groups(&labels);
+    let x = Array2::from_shape_fn((60, 2), |(i, j)| (i * (j + 1)) as f64);
+    let y = Array1::from_shape_fn(60, |i| i as f64);
+    let settings = NestedSettings {
+        k_outer: 3,
+        k_inner: 5,
+        ..Default::default()
+    };
+    let never =
+        |_: &Grid, _: ArrayView2<f64>, _: ArrayView2<f64>, _: ArrayView2<f64>| -> GridPredictions {
+            panic!("no model is fitted when the folds cannot be made")
+        };
+    let grid = Grid {
+        family: Family::Ridge,
+        points: vec![Hyper::Ridge { alpha: 1.0 }],
+    };
+    let err = validate(
+        x.view(),
+        y.view(),
+        &design,
+        &[grid],
+        &settings,
+        &never,
+        &|_, _, _| {},
+    )
+    .unwrap_err();
+    match &err {
+        Error::InnerFolds { source, .. } => assert_eq!(
+            **source,
+            Error::TooFewGroups {
+                groups: 4,
+                folds: 5,
+                what: "groups"
+            }
+        ),
+        other => panic!("expected InnerFolds, got {other:?}"),
+    }
+    assert!(
+        err.to_string().contains("only 4 groups for 5 folds"),
+        "{err}"
+    );
 }

@@ -98,8 +98,12 @@ pub fn encode(sections: &Sections) -> Vec<u8> {
             out.extend_from_slice(&(*d as u64).to_le_bytes());
         }
         match &array.elements {
-            Elements::F64(v) => v.iter().for_each(|x| out.extend_from_slice(&x.to_le_bytes())),
-            Elements::U32(v) => v.iter().for_each(|x| out.extend_from_slice(&x.to_le_bytes())),
+            Elements::F64(v) => v
+                .iter()
+                .for_each(|x| out.extend_from_slice(&x.to_le_bytes())),
+            Elements::U32(v) => v
+                .iter()
+                .for_each(|x| out.extend_from_slice(&x.to_le_bytes())),
             Elements::U8(v) => out.extend_from_slice(v),
         }
     }
@@ -124,14 +128,23 @@ pub fn decode(bytes: &[u8]) -> Result<Sections, FormatError> {
         return Err(FormatError::NotABundle);
     }
     let rest = &bytes[MAGIC.len()..];
-    let line_end = rest.iter().position(|&b| b == b'\n').ok_or(FormatError::Malformed {
-        offset: MAGIC.len(),
-        what: "no format version line".into(),
-    })?;
+    let line_end = rest
+        .iter()
+        .position(|&b| b == b'\n')
+        .ok_or(FormatError::Malformed {
+            offset: MAGIC.len(),
+            what: "no format version line".into(),
+        })?;
     let version_line = String::from_utf8_lossy(&rest[..line_end]).into_owned();
-    let found = version_line.strip_prefix("format ").unwrap_or(&version_line).to_string();
+    let found = version_line
+        .strip_prefix("format ")
+        .unwrap_or(&version_line)
+        .to_string();
     if found != FORMAT_VERSION.to_string() {
-        return Err(FormatError::UnknownVersion { found, supported: FORMAT_VERSION });
+        return Err(FormatError::UnknownVersion {
+            found,
+            supported: FORMAT_VERSION,
+        });
     }
     if bytes.len() < CHECKSUM_LEN + MAGIC.len() + line_end + 1 {
         return Err(FormatError::TooShort { len: bytes.len() });
@@ -139,9 +152,15 @@ pub fn decode(bytes: &[u8]) -> Result<Sections, FormatError> {
     let (body, stored) = bytes.split_at(bytes.len() - CHECKSUM_LEN);
     let computed = Sha256::digest(body);
     if computed.as_slice() != stored {
-        return Err(FormatError::ChecksumMismatch { stored: hex(stored), computed: hex(&computed) });
+        return Err(FormatError::ChecksumMismatch {
+            stored: hex(stored),
+            computed: hex(&computed),
+        });
     }
-    let mut r = Reader { bytes: body, pos: MAGIC.len() + line_end + 1 };
+    let mut r = Reader {
+        bytes: body,
+        pos: MAGIC.len() + line_end + 1,
+    };
     let manifest_len = r.u64("manifest length")? as usize;
     let manifest = r.take(manifest_len, "manifest")?.to_vec();
     let count = r.u32("array count")?;
@@ -159,7 +178,9 @@ pub fn decode(bytes: &[u8]) -> Result<Sections, FormatError> {
         let len = shape
             .iter()
             .try_fold(1usize, |acc, &d| acc.checked_mul(d))
-            .ok_or_else(|| r.malformed(&format!("array '{name}' has an impossible shape {shape:?}")))?;
+            .ok_or_else(|| {
+                r.malformed(&format!("array '{name}' has an impossible shape {shape:?}"))
+            })?;
         let elements = match tag {
             1 => Elements::F64(
                 r.take_elems(len, 8, &name)?
@@ -174,9 +195,16 @@ pub fn decode(bytes: &[u8]) -> Result<Sections, FormatError> {
                     .collect(),
             ),
             3 => Elements::U8(r.take_elems(len, 1, &name)?.to_vec()),
-            other => return Err(r.malformed(&format!("array '{name}' has unknown element type {other}"))),
+            other => {
+                return Err(
+                    r.malformed(&format!("array '{name}' has unknown element type {other}"))
+                );
+            }
         };
-        if arrays.insert(name.clone(), Array { shape, elements }).is_some() {
+        if arrays
+            .insert(name.clone(), Array { shape, elements })
+            .is_some()
+        {
             return Err(r.malformed(&format!("array '{name}' appears twice")));
         }
     }
@@ -193,7 +221,10 @@ struct Reader<'a> {
 
 impl<'a> Reader<'a> {
     fn malformed(&self, what: &str) -> FormatError {
-        FormatError::Malformed { offset: self.pos, what: what.to_string() }
+        FormatError::Malformed {
+            offset: self.pos,
+            what: what.to_string(),
+        }
     }
 
     fn take(&mut self, n: usize, what: &str) -> Result<&'a [u8], FormatError> {
@@ -208,7 +239,12 @@ impl<'a> Reader<'a> {
         }
     }
 
-    fn take_elems(&mut self, len: usize, width: usize, name: &str) -> Result<&'a [u8], FormatError> {
+    fn take_elems(
+        &mut self,
+        len: usize,
+        width: usize,
+        name: &str,
+    ) -> Result<&'a [u8], FormatError> {
         let n = len
             .checked_mul(width)
             .ok_or_else(|| self.malformed(&format!("array '{name}' is impossibly large")))?;
@@ -216,13 +252,19 @@ impl<'a> Reader<'a> {
     }
 
     fn u16(&mut self, what: &str) -> Result<u16, FormatError> {
-        Ok(u16::from_le_bytes(self.take(2, what)?.try_into().expect("2 bytes")))
+        Ok(u16::from_le_bytes(
+            self.take(2, what)?.try_into().expect("2 bytes"),
+        ))
     }
     fn u32(&mut self, what: &str) -> Result<u32, FormatError> {
-        Ok(u32::from_le_bytes(self.take(4, what)?.try_into().expect("4 bytes")))
+        Ok(u32::from_le_bytes(
+            self.take(4, what)?.try_into().expect("4 bytes"),
+        ))
     }
     fn u64(&mut self, what: &str) -> Result<u64, FormatError> {
-        Ok(u64::from_le_bytes(self.take(8, what)?.try_into().expect("8 bytes")))
+        Ok(u64::from_le_bytes(
+            self.take(8, what)?.try_into().expect("8 bytes"),
+        ))
     }
 }
 
@@ -231,13 +273,31 @@ mod tests {
     use super::*;
 
     fn sample() -> Sections {
-        let mut s = Sections { manifest: br#"{"a":1}"#.to_vec(), ..Default::default() };
+        let mut s = Sections {
+            manifest: br#"{"a":1}"#.to_vec(),
+            ..Default::default()
+        };
         s.arrays.insert(
             "x".into(),
-            Array { shape: vec![2, 3], elements: Elements::F64(vec![1.0, -2.5, f64::MIN_POSITIVE, 0.0, 7.0, 1e300]) },
+            Array {
+                shape: vec![2, 3],
+                elements: Elements::F64(vec![1.0, -2.5, f64::MIN_POSITIVE, 0.0, 7.0, 1e300]),
+            },
         );
-        s.arrays.insert("f".into(), Array { shape: vec![4], elements: Elements::U32(vec![0, 1, 2, u32::MAX]) });
-        s.arrays.insert("m".into(), Array { shape: vec![2], elements: Elements::U8(vec![0, 1]) });
+        s.arrays.insert(
+            "f".into(),
+            Array {
+                shape: vec![4],
+                elements: Elements::U32(vec![0, 1, 2, u32::MAX]),
+            },
+        );
+        s.arrays.insert(
+            "m".into(),
+            Array {
+                shape: vec![2],
+                elements: Elements::U8(vec![0, 1]),
+            },
+        );
         s
     }
 
@@ -263,7 +323,10 @@ mod tests {
     fn every_truncation_is_refused() {
         let bytes = encode(&sample());
         for len in 0..bytes.len() {
-            assert!(decode(&bytes[..len]).is_err(), "truncation to {len} accepted");
+            assert!(
+                decode(&bytes[..len]).is_err(),
+                "truncation to {len} accepted"
+            );
         }
     }
 

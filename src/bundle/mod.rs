@@ -26,9 +26,15 @@ pub const EXTENSION: &str = "plumb";
 #[derive(Debug, thiserror::Error)]
 pub enum Error {
     #[error("cannot read bundle {path}: {source}")]
-    Read { path: PathBuf, source: std::io::Error },
+    Read {
+        path: PathBuf,
+        source: std::io::Error,
+    },
     #[error("cannot write bundle {path}: {source}")]
-    Write { path: PathBuf, source: std::io::Error },
+    Write {
+        path: PathBuf,
+        source: std::io::Error,
+    },
     #[error("bundle {path}: {source}")]
     Format { path: PathBuf, source: FormatError },
     #[error("bundle {path}: the manifest is not valid: {reason}")]
@@ -107,44 +113,82 @@ pub struct Bundle {
 /// Encodes a model into bundle bytes. The model's version is set from the
 /// content: the first 12 hex digits of the SHA-256 of the bundle with an
 /// empty version, so the same fit gives the same version.
-pub fn encode(model: &ScoringModel, card: &Card, training_ids: &[String], training_y: &[f64]) -> Vec<u8> {
+pub fn encode(
+    model: &ScoringModel,
+    card: &Card,
+    training_ids: &[String],
+    training_y: &[f64],
+) -> Vec<u8> {
     let mut info = model.info.clone();
     info.version = String::new();
     let unversioned = persist::to_sections(model, &info, card, training_ids, training_y);
     let version = format::content_hash(&format::encode(&unversioned))[..12].to_string();
     info.version = version;
-    format::encode(&persist::to_sections(model, &info, card, training_ids, training_y))
+    format::encode(&persist::to_sections(
+        model,
+        &info,
+        card,
+        training_ids,
+        training_y,
+    ))
 }
 
 /// Writes a bundle atomically (temporary file, fsync, rename), so a reader
 /// never sees half a bundle. Returns the version written.
-pub fn write(path: &Path, model: &ScoringModel, card: &Card, training_ids: &[String], training_y: &[f64]) -> Result<String, Error> {
+pub fn write(
+    path: &Path,
+    model: &ScoringModel,
+    card: &Card,
+    training_ids: &[String],
+    training_y: &[f64],
+) -> Result<String, Error> {
     use std::io::Write as _;
     let bytes = encode(model, card, training_ids, training_y);
-    let werr = |source| Error::Write { path: path.to_path_buf(), source };
+    let werr = |source| Error::Write {
+        path: path.to_path_buf(),
+        source,
+    };
     let tmp = path.with_extension("plumb.tmp");
     let mut f = std::fs::File::create(&tmp).map_err(werr)?;
     f.write_all(&bytes).map_err(werr)?;
     f.sync_all().map_err(werr)?;
     drop(f);
     std::fs::rename(&tmp, path).map_err(werr)?;
-    let sections = format::decode(&bytes).map_err(|source| Error::Format { path: path.to_path_buf(), source })?;
-    let manifest: Manifest = serde_json::from_slice(&sections.manifest)
-        .map_err(|e| Error::Manifest { path: path.to_path_buf(), reason: e.to_string() })?;
+    let sections = format::decode(&bytes).map_err(|source| Error::Format {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    let manifest: Manifest =
+        serde_json::from_slice(&sections.manifest).map_err(|e| Error::Manifest {
+            path: path.to_path_buf(),
+            reason: e.to_string(),
+        })?;
     Ok(manifest.info.version)
 }
 
 /// Reads and fully checks a bundle.
 pub fn read(path: &Path) -> Result<Bundle, Error> {
-    let bytes = std::fs::read(path).map_err(|source| Error::Read { path: path.to_path_buf(), source })?;
+    let bytes = std::fs::read(path).map_err(|source| Error::Read {
+        path: path.to_path_buf(),
+        source,
+    })?;
     decode(path, &bytes)
 }
 
 /// Decodes bundle bytes; `path` only names the file in errors.
 pub fn decode(path: &Path, bytes: &[u8]) -> Result<Bundle, Error> {
-    let sections = format::decode(bytes).map_err(|source| Error::Format { path: path.to_path_buf(), source })?;
+    let sections = format::decode(bytes).map_err(|source| Error::Format {
+        path: path.to_path_buf(),
+        source,
+    })?;
     persist::from_sections(&sections).map_err(|e| match e {
-        persist::Problem::Manifest(reason) => Error::Manifest { path: path.to_path_buf(), reason },
-        persist::Problem::Inconsistent(reason) => Error::Inconsistent { path: path.to_path_buf(), reason },
+        persist::Problem::Manifest(reason) => Error::Manifest {
+            path: path.to_path_buf(),
+            reason,
+        },
+        persist::Problem::Inconsistent(reason) => Error::Inconsistent {
+            path: path.to_path_buf(),
+            reason,
+        },
     })
 }

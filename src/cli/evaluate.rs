@@ -38,9 +38,17 @@ pub fn run(args: &EvaluateArgs) -> anyhow::Result<()> {
     let bundle = crate::bundle::read(&args.bundle)?;
     let model = &bundle.model;
     let confidence = check_confidence(args.confidence.unwrap_or(model.info.default_confidence))?;
-    let target = args.target.clone().unwrap_or_else(|| bundle.manifest.card.target_column.clone());
-    let table = crate::data::read_for_model(&args.data, &args.id, &model.info.descriptor_names, Some(&target))
-        .with_context(|| format!("reading {}", args.data.display()))?;
+    let target = args
+        .target
+        .clone()
+        .unwrap_or_else(|| bundle.manifest.card.target_column.clone());
+    let table = crate::data::read_for_model(
+        &args.data,
+        &args.id,
+        &model.info.descriptor_names,
+        Some(&target),
+    )
+    .with_context(|| format!("reading {}", args.data.display()))?;
     let Some(y) = table.y.as_ref() else {
         anyhow::bail!("{} has no target column '{target}'", args.data.display());
     };
@@ -77,11 +85,14 @@ pub fn realised(y: &[f64], scores: &[CandidateScore], verdict: Option<Verdict>) 
     let covered = obs
         .iter()
         .zip(&rows)
-        .filter(|(y, s)| s.interval.lower.is_none_or(|l| **y >= l) && s.interval.upper.is_none_or(|u| **y <= u))
+        .filter(|(y, s)| {
+            s.interval.lower.is_none_or(|l| **y >= l) && s.interval.upper.is_none_or(|u| **y <= u)
+        })
         .count();
     Realised {
         n,
-        metrics: (n >= 2).then(|| crate::validate::metrics(ArrayView1::from(&obs), ArrayView1::from(&preds))),
+        metrics: (n >= 2)
+            .then(|| crate::validate::metrics(ArrayView1::from(&obs), ArrayView1::from(&preds))),
         coverage: (n > 0).then(|| covered as f64 / n as f64),
     }
 }

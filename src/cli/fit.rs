@@ -22,10 +22,14 @@ pub fn run(args: &FitArgs) -> anyhow::Result<()> {
         descriptors: args.descriptors.clone(),
         drop_incomplete: args.drop_incomplete,
     };
-    let table = data::read_table(&args.data, &spec).with_context(|| format!("reading {}", args.data.display()))?;
+    let table = data::read_table(&args.data, &spec)
+        .with_context(|| format!("reading {}", args.data.display()))?;
     data::check_enough_rows(table.ids.len(), args.folds, args.inner_folds)?;
     if table.dropped_incomplete > 0 && !args.quiet {
-        eprintln!("dropped {} incomplete rows (--drop-incomplete)", table.dropped_incomplete);
+        eprintln!(
+            "dropped {} incomplete rows (--drop-incomplete)",
+            table.dropped_incomplete
+        );
     }
 
     let bar = progress_bar(args.quiet);
@@ -36,15 +40,27 @@ pub fn run(args: &FitArgs) -> anyhow::Result<()> {
             bar.set_message(stage.to_string());
         }
     };
-    let outcome = crate::fit::fit(&table, &args.data.display().to_string(), &options, &progress)?;
+    let outcome = crate::fit::fit(
+        &table,
+        &args.data.display().to_string(),
+        &options,
+        &progress,
+    )?;
     if let Some(bar) = bar {
         bar.finish_and_clear();
     }
 
     if let Some(dir) = &args.report {
-        crate::report::write(&outcome.report, dir).with_context(|| format!("writing the report to {}", dir.display()))?;
+        crate::report::write(&outcome.report, dir)
+            .with_context(|| format!("writing the report to {}", dir.display()))?;
     }
-    let version = crate::bundle::write(&args.out, &outcome.model, &outcome.card, &table.ids, &outcome.training_y)?;
+    let version = crate::bundle::write(
+        &args.out,
+        &outcome.model,
+        &outcome.card,
+        &table.ids,
+        &outcome.training_y,
+    )?;
     if !args.quiet {
         eprint!("{}", crate::fit::summary(&outcome, &version));
         eprintln!("wrote {}", args.out.display());
@@ -66,9 +82,9 @@ pub fn options(args: &FitArgs) -> anyhow::Result<FitOptions> {
     };
     let mut grid_overrides = Vec::new();
     for g in &args.grids {
-        let (family, spec) = g
-            .split_once(':')
-            .with_context(|| format!("--grid '{g}' should look like FAMILY:SPEC, e.g. ridge:alpha=10,1,0.1"))?;
+        let (family, spec) = g.split_once(':').with_context(|| {
+            format!("--grid '{g}' should look like FAMILY:SPEC, e.g. ridge:alpha=10,1,0.1")
+        })?;
         let family = match family {
             "ridge" => Family::Ridge,
             "kernel-ridge" => Family::KernelRidge,
@@ -78,12 +94,20 @@ pub fn options(args: &FitArgs) -> anyhow::Result<FitOptions> {
         grid_overrides.push(crate::models::parse_grid(family, spec)?);
     }
     if args.folds < 2 || args.inner_folds < 2 {
-        anyhow::bail!("--folds and --inner-folds must be at least 2 (got {} and {})", args.folds, args.inner_folds);
+        anyhow::bail!(
+            "--folds and --inner-folds must be at least 2 (got {} and {})",
+            args.folds,
+            args.inner_folds
+        );
     }
     super::predict::check_confidence(args.confidence)?;
     let name = match &args.name {
         Some(n) => n.clone(),
-        None => args.out.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "model".into()),
+        None => args
+            .out
+            .file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_else(|| "model".into()),
     };
     Ok(FitOptions {
         families,
@@ -113,9 +137,10 @@ fn progress_bar(quiet: bool) -> Option<ProgressBar> {
         return None;
     }
     let bar = ProgressBar::new(1);
-    let style = ProgressStyle::with_template("{spinner} {msg:<28} [{bar:30}] {pos}/{len} {elapsed}")
-        .unwrap_or_else(|_| ProgressStyle::default_bar())
-        .progress_chars("=> ");
+    let style =
+        ProgressStyle::with_template("{spinner} {msg:<28} [{bar:30}] {pos}/{len} {elapsed}")
+            .unwrap_or_else(|_| ProgressStyle::default_bar())
+            .progress_chars("=> ");
     bar.set_style(style);
     Some(bar)
 }

@@ -7,12 +7,17 @@ use std::path::PathBuf;
 use clap::{Args, Parser, Subcommand, ValueEnum};
 
 pub mod bundle_cmd;
+pub mod demo;
 pub mod evaluate;
 pub mod fit;
 pub mod predict;
 
 #[derive(Debug, Parser)]
-#[command(name = "plumbline", version, about = "Honest regression models and a gRPC scoring service with an applicability-domain guard")]
+#[command(
+    name = "plumbline",
+    version,
+    about = "Honest regression models and a gRPC scoring service with an applicability-domain guard"
+)]
 pub struct Cli {
     #[command(subcommand)]
     pub command: Command,
@@ -246,8 +251,39 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Predict(args) => predict::run(&args),
         Command::Evaluate(args) => evaluate::run(&args),
         Command::Bundle { command } => bundle_cmd::run(&command),
-        Command::Serve(_) | Command::Score(_) | Command::Demo(_) => {
-            anyhow::bail!("this command is not built yet")
-        }
+        Command::Serve(args) => serve(&args),
+        Command::Score(args) => score(&args),
+        Command::Demo(args) => demo::run(&args),
     }
+}
+
+fn serve(args: &ServeArgs) -> anyhow::Result<()> {
+    use crate::service::settings::Settings;
+    let mut overrides: Vec<(&str, String)> = Vec::new();
+    if let Some(l) = &args.listen {
+        overrides.push(("server.listen", l.clone()));
+    }
+    if let Some(b) = &args.bundles {
+        overrides.push(("models.dir", b.display().to_string()));
+    }
+    if let Some(a) = &args.audit {
+        overrides.push(("audit.path", a.display().to_string()));
+    }
+    let settings = Settings::load_from_process_env(args.config.as_deref(), &overrides)?;
+    let runtime = crate::service::build_runtime(&settings)?;
+    runtime.block_on(crate::service::serve_main(settings))
+}
+
+fn score(args: &ScoreArgs) -> anyhow::Result<()> {
+    let runtime = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()?;
+    runtime.block_on(crate::service::client::score_client(
+        &args.endpoint,
+        &args.data,
+        &args.out,
+        &args.model,
+        args.confidence,
+        &args.id,
+    ))
 }

@@ -5,7 +5,9 @@ use std::path::Path;
 use anyhow::Context;
 
 use super::{OutsideArg, PolicyArgs, PredictArgs, RankKeyArg};
-use crate::scoring::{self, CandidateScore, Disposition, OutsidePolicy, Policy, RankKey, ScoringModel};
+use crate::scoring::{
+    self, CandidateScore, Disposition, OutsidePolicy, Policy, RankKey, ScoringModel,
+};
 
 impl PolicyArgs {
     pub fn policy(&self) -> Policy {
@@ -36,8 +38,9 @@ pub fn run(args: &PredictArgs) -> anyhow::Result<()> {
     let bundle = crate::bundle::read(&args.bundle)?;
     let model = &bundle.model;
     let confidence = check_confidence(args.confidence.unwrap_or(model.info.default_confidence))?;
-    let table = crate::data::read_for_model(&args.data, &args.id, &model.info.descriptor_names, None)
-        .with_context(|| format!("reading {}", args.data.display()))?;
+    let table =
+        crate::data::read_for_model(&args.data, &args.id, &model.info.descriptor_names, None)
+            .with_context(|| format!("reading {}", args.data.display()))?;
     let scores = model.score(table.x.view(), confidence);
     let rows = scored_rows(model, &table.ids, &scores, &args.policy.policy());
     write_rows(&args.out, &rows)?;
@@ -65,7 +68,12 @@ pub struct Row {
 }
 
 /// Applies the policy: dispositions, refused predictions withheld, ranks.
-pub fn scored_rows(model: &ScoringModel, ids: &[String], scores: &[CandidateScore], policy: &Policy) -> Vec<Row> {
+pub fn scored_rows(
+    model: &ScoringModel,
+    ids: &[String],
+    scores: &[CandidateScore],
+    policy: &Policy,
+) -> Vec<Row> {
     let refs: Vec<Option<&CandidateScore>> = scores.iter().map(Some).collect();
     let ranks = scoring::ranks(&refs, policy, model.info.direction);
     ids.iter()
@@ -94,10 +102,23 @@ fn opt(v: Option<f64>) -> String {
 }
 
 fn write_rows(path: &Path, rows: &[Row]) -> anyhow::Result<()> {
-    let mut w = csv::Writer::from_path(path).with_context(|| format!("creating {}", path.display()))?;
-    w.write_record(["id", "prediction", "lower", "upper", "verdict", "typicality", "rank"])?;
+    let mut w =
+        csv::Writer::from_path(path).with_context(|| format!("creating {}", path.display()))?;
+    w.write_record([
+        "id",
+        "prediction",
+        "lower",
+        "upper",
+        "verdict",
+        "typicality",
+        "rank",
+    ])?;
     for r in rows {
-        let rank = if r.rank > 0 { r.rank.to_string() } else { String::new() };
+        let rank = if r.rank > 0 {
+            r.rank.to_string()
+        } else {
+            String::new()
+        };
         w.write_record([
             r.id.clone(),
             opt(r.prediction),

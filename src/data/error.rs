@@ -71,6 +71,11 @@ pub enum Error {
     #[error("the file is empty: a header row naming the columns is needed")]
     NoHeader,
     #[error(
+        "column {position} has no name in the header (a saved row index, or a trailing \
+         separator?); name it or remove it"
+    )]
+    UnnamedColumn { position: usize },
+    #[error(
         "the header names column '{name}' twice (columns {first} and {second}); \
          rename one of them"
     )]

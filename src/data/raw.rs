@@ -94,6 +94,9 @@ impl RawTable {
 fn check_unique_names(header: &[String]) -> Result<(), Error> {
     let mut seen: HashMap<&str, usize> = HashMap::new();
     for (j, name) in header.iter().enumerate() {
+        if name.is_empty() {
+            return Err(Error::UnnamedColumn { position: j + 1 });
+        }
         if let Some(&first) = seen.get(name.as_str()) {
             return Err(Error::DuplicateColumn {
                 name: name.clone(),

@@ -144,7 +144,7 @@ mod tests {
     fn numbers_read_with_four_significant_figures() {
         assert_eq!(num(0.012346), "0.01235");
         assert_eq!(num(3.0), "3");
-        assert_eq!(num(2.71828), "2.718");
+        assert_eq!(num(2.34567), "2.346");
         assert_eq!(num(1234.56), "1235");
         assert_eq!(num(-0.5), "-0.5");
         assert_eq!(num(1.5e-5), "1.500e-5");

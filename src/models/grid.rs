@@ -23,6 +23,13 @@ const KNN_KS: [usize; 9] = [30, 20, 15, 10, 7, 5, 3, 2, 1];
 
 /// The default grid of a family for `n_descriptors` standardised
 /// descriptors, simplest first.
+///
+/// | name | family | default values | purpose | range |
+/// | --- | --- | --- | --- | --- |
+/// | `alpha` | ridge | 10³, 10^2.5, …, 10⁻³ (13) | shrinkage of the coefficients | > 0 |
+/// | `gamma` | kernel ridge | {0.1, 0.3, 1, 3} / p | inverse squared kernel width | > 0 |
+/// | `alpha` | kernel ridge | 10, 1, 0.1, 0.01, 0.001 | shrinkage of the dual coefficients | > 0 |
+/// | `k` | k-NN | 30, 20, 15, 10, 7, 5, 3, 2, 1 | neighbours averaged (capped at n) | ≥ 1 |
 pub fn default_grid(family: Family, n_descriptors: usize) -> Grid {
     let points = match family {
         Family::Ridge => default_ridge_alphas()

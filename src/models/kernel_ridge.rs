@@ -81,7 +81,7 @@ pub(super) fn fit_members(
     let mut dual = Array2::zeros((n, members.len()));
     let mut offset = Array1::zeros(members.len());
     for (m, rows) in members.iter().enumerate() {
-        let km = kernel.select(Axis(0), rows).select(Axis(1), rows);
+        let km = principal_submatrix(&kernel, rows);
         let ym = y.select(Axis(0), rows);
         let mean = ym.mean().unwrap_or(0.0);
         let rhs = (ym - mean).insert_axis(Axis(1));
@@ -97,6 +97,17 @@ pub(super) fn fit_members(
         dual,
         offset,
     })
+}
+
+/// K[rows, rows], gathered row by row (each source row is contiguous).
+fn principal_submatrix(k: &Array2<f64>, rows: &[usize]) -> Array2<f64> {
+    let mut out = Vec::with_capacity(rows.len() * rows.len());
+    for &i in rows {
+        let row = k.row(i);
+        out.extend(rows.iter().map(|&j| row[j]));
+    }
+    Array2::from_shape_vec((rows.len(), rows.len()), out)
+        .unwrap_or_else(|_| unreachable!("rows² values were gathered"))
 }
 
 /// B × m predictions: one kernel block k(x, X) (B × n) times the n × m

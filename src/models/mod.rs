@@ -4,8 +4,9 @@
 //! - [`grid_predict`] fits one family over its whole hyperparameter grid on a
 //!   training set and predicts a test set, for several target columns at once
 //!   (the real target plus y-randomisation permutations). Kernel ridge
-//!   eigendecomposes the kernel matrix once per γ; every α (and every target
-//!   column) then costs O(n²).
+//!   factorises the kernel matrix once per γ (an orthogonal reduction to
+//!   tridiagonal form, the cheaper half of an eigendecomposition); every α
+//!   and every target column then costs O(n²).
 //! - [`fit_predictor`] fits one hyperparameter setting on several row subsets
 //!   at once (the full training set and the K fold-training sets of CV+) and
 //!   returns a [`Predictor`] that predicts all of them from one kernel row or

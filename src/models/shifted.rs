@@ -27,11 +27,11 @@
 //! rounding level can never flip the sign of a direction.
 
 use faer::dyn_stack::{MemBuffer, MemStack, StackReq};
+use faer::linalg::cholesky::llt;
 use faer::linalg::evd::tridiag;
 use faer::linalg::householder;
 use faer::linalg::qr::no_pivoting::factor::recommended_block_size;
-use faer::linalg::solvers::Solve;
-use faer::{Conj, Mat, MatRef, Par, Side};
+use faer::{Conj, Mat, MatMut, MatRef, Par};
 use ndarray::{Array1, Array2, ArrayView2};
 
 use crate::linalg;
@@ -52,8 +52,8 @@ fn par_for(flops: usize) -> Par {
 /// Solves (G + αI) X = B for every α: the result is n × (A·c) with the
 /// solution for `alphas[a]` in columns `a·c .. (a+1)·c`. `g` is consumed
 /// (the tridiagonal route overwrites it). Every α must be positive and
-/// finite, and G symmetric positive semi-definite up to rounding; only its
-/// lower triangle is read.
+/// finite, and G symmetric positive semi-definite up to rounding; only one
+/// triangle is read.
 pub(crate) fn solve_shifted(
     g: Array2<f64>,
     alphas: &[f64],
@@ -63,18 +63,22 @@ pub(crate) fn solve_shifted(
     debug_assert_eq!(g.ncols(), n);
     debug_assert_eq!(b.nrows(), n);
     debug_assert!(alphas.iter().all(|a| a.is_finite() && *a > 0.0));
-    let g = to_faer(g.view());
-    let rhs = to_faer(b);
-    if alphas.len() <= MAX_ALPHAS_FOR_CHOLESKY
-        && let Some(x) = solve_by_cholesky(g.as_ref(), alphas, rhs.as_ref())
-    {
-        return Ok(to_ndarray(x.as_ref()));
+    // G's row-major buffer read as a column-major matrix is Gᵀ = G: faer
+    // works on it without a copy.
+    let mut buffer = if g.is_standard_layout() {
+        g.into_raw_vec_and_offset().0
+    } else {
+        g.iter().copied().collect()
+    };
+    let rhs = Mat::from_fn(n, b.ncols(), |i, j| b[[i, j]]);
+    if alphas.len() <= MAX_ALPHAS_FOR_CHOLESKY {
+        let g = MatRef::from_column_major_slice(&buffer, n, n);
+        if let Some(x) = solve_by_cholesky(g, alphas, rhs.as_ref()) {
+            return Ok(to_ndarray(x.as_ref()));
+        }
     }
+    let g = MatMut::from_column_major_slice_mut(&mut buffer, n, n);
     solve_by_tridiagonal(g, alphas, rhs.as_ref()).map(|x| to_ndarray(x.as_ref()))
-}
-
-fn to_faer(a: ArrayView2<f64>) -> Mat<f64> {
-    Mat::from_fn(a.nrows(), a.ncols(), |i, j| a[[i, j]])
 }
 
 fn to_ndarray(a: MatRef<'_, f64>) -> Array2<f64> {
@@ -86,12 +90,30 @@ fn to_ndarray(a: MatRef<'_, f64>) -> Array2<f64> {
 /// can clamp.
 fn solve_by_cholesky(g: MatRef<'_, f64>, alphas: &[f64], b: MatRef<'_, f64>) -> Option<Mat<f64>> {
     let (n, c) = (g.nrows(), b.ncols());
+    let par = par_for(n * n * n);
+    let mut mem = MemBuffer::new(StackReq::any_of(&[
+        llt::factor::cholesky_in_place_scratch::<f64>(n, par, Default::default()),
+        llt::solve::solve_in_place_scratch::<f64>(n, c, par),
+    ]));
+    let stack = MemStack::new(&mut mem);
     let mut out = Mat::<f64>::zeros(n, alphas.len() * c);
+    let mut factor = Mat::<f64>::zeros(n, n);
     for (a, &alpha) in alphas.iter().enumerate() {
-        let shifted = Mat::from_fn(n, n, |i, j| g[(i, j)] + if i == j { alpha } else { 0.0 });
-        let llt = shifted.llt(Side::Lower).ok()?;
-        let x = llt.solve(b);
-        out.subcols_mut(a * c, c).copy_from(&x);
+        factor.copy_from_triangular_lower(g);
+        for i in 0..n {
+            factor[(i, i)] += alpha;
+        }
+        llt::factor::cholesky_in_place(
+            factor.as_mut(),
+            Default::default(),
+            par,
+            stack,
+            Default::default(),
+        )
+        .ok()?;
+        let mut x = out.subcols_mut(a * c, c);
+        x.copy_from(b);
+        llt::solve::solve_in_place_with_conj(factor.as_ref(), Conj::No, x, par, stack);
     }
     let finite = out.col_iter().all(|col| col.iter().all(|v| v.is_finite()));
     finite.then_some(out)
@@ -99,7 +121,7 @@ fn solve_by_cholesky(g: MatRef<'_, f64>, alphas: &[f64], b: MatRef<'_, f64>) -> 
 
 /// The tridiagonal route of the module header.
 fn solve_by_tridiagonal(
-    mut g: Mat<f64>,
+    mut g: MatMut<'_, f64>,
     alphas: &[f64],
     b: MatRef<'_, f64>,
 ) -> Result<Mat<f64>, linalg::Error> {
@@ -248,13 +270,15 @@ impl Spectral {
         for (mut row, lambda) in coords.rows_mut().into_iter().zip(&self.values) {
             row /= lambda + alpha;
         }
-        to_faer(linalg::matmul(self.vectors.view(), coords.view()).view())
+        let x = linalg::matmul(self.vectors.view(), coords.view());
+        Mat::from_fn(x.nrows(), x.ncols(), |i, j| x[[i, j]])
     }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use faer::linalg::solvers::Solve;
     use rand::{Rng, SeedableRng};
     use rand_xoshiro::Xoshiro256PlusPlus;
 
@@ -269,6 +293,10 @@ mod tests {
         let n = g.nrows();
         let shifted = Mat::from_fn(n, n, |i, j| g[[i, j]] + if i == j { alpha } else { 0.0 });
         to_ndarray(shifted.partial_piv_lu().solve(to_faer(b.view())).as_ref())
+    }
+
+    fn to_faer(a: ArrayView2<f64>) -> Mat<f64> {
+        Mat::from_fn(a.nrows(), a.ncols(), |i, j| a[[i, j]])
     }
 
     fn assert_close(a: &Array2<f64>, b: &Array2<f64>, rel: f64) {

@@ -416,3 +416,24 @@ fn check_finds_predictors_whose_arrays_do_not_fit_together() {
     };
     assert_eq!(lonely.check(), Err(Error::EmptyMember { member: 0 }));
 }
+
+#[test]
+fn degenerate_sizes_give_well_shaped_answers() {
+    // One training row: the centred target is zero, so every family
+    // predicts that row's target everywhere.
+    let x = array![[0.5, -1.0, 2.0]];
+    let y = array![[7.0, -3.0]];
+    let xt = random(4, 3, 16);
+    for grid in small_grids(3) {
+        let out = grid_predict(&grid, x.view(), y.view(), xt.view());
+        assert_eq!(out.test.dim(), (grid.points.len(), 4, 2));
+        for ((_, _, c), v) in out.test.indexed_iter() {
+            assert!((v - y[[0, c]]).abs() < 1e-12, "{}: {v}", grid.family.name());
+        }
+        // An empty test set is no error: the train curve alone.
+        let none = Array2::<f64>::zeros((0, 3));
+        let out = grid_predict(&grid, x.view(), y.view(), none.view());
+        assert_eq!(out.test.dim(), (grid.points.len(), 0, 2));
+        assert_eq!(out.train.dim(), (grid.points.len(), 1, 2));
+    }
+}

@@ -75,11 +75,7 @@ pub fn render(r: &FitReport) -> String {
         page,
         "<h1>{}</h1>\n<p class=\"meta\">{} · written {} by plumbline {} · data {} (SHA-256 {})</p>\n",
         escape(&title),
-        escape(&format!(
-            "{} on {}",
-            r.selection.family,
-            hyper_text(&r.selection.hyper)
-        )),
+        escape(&hyper_text(&r.selection.hyper)),
         escape(&r.created_at),
         escape(&r.tool_version),
         escape(&r.data.path),
@@ -153,14 +149,18 @@ fn symbol(parameter: &str) -> &str {
     }
 }
 
-/// A table from a header row and body rows of already-escaped cells; cells
-/// starting with a digit, sign or "n/a" are right-aligned as numbers.
+/// A table from a header row (none when every heading is empty, as in a
+/// key–value table) and body rows of already-escaped cells; cells starting
+/// with a digit, sign or "n/a" are right-aligned as numbers.
 fn table(id: &str, head: &[&str], rows: &[Vec<String>]) -> String {
-    let mut s = format!("<table id=\"{}\">\n<tr>", escape(id));
-    for h in head {
-        let _ = write!(s, "<th>{}</th>", escape(h));
+    let mut s = format!("<table id=\"{}\">\n", escape(id));
+    if head.iter().any(|h| !h.is_empty()) {
+        s.push_str("<tr>");
+        for h in head {
+            let _ = write!(s, "<th>{}</th>", escape(h));
+        }
+        s.push_str("</tr>\n");
     }
-    s.push_str("</tr>\n");
     for row in rows {
         s.push_str("<tr>");
         for cell in row {
@@ -227,7 +227,7 @@ fn selection(r: &FitReport) -> String {
             } else {
                 ""
             };
-            let per_fold: Vec<String> = f.chosen_per_outer_fold.iter().map(hyper_text).collect();
+            let per_fold = tally(&f.chosen_per_outer_fold);
             let _ = writeln!(
                 t,
                 "<tr{chosen}><td>{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td>\
@@ -236,13 +236,32 @@ fn selection(r: &FitReport) -> String {
                 escape(&estimate(&f.claims.mse)),
                 escape(&estimate(&f.claims.r2)),
                 if f.within_one_se { "yes" } else { "no" },
-                escape(&per_fold.join("; "))
+                escape(&per_fold)
             );
         }
         t.push_str("</table>\n");
         s.push_str(&t);
     }
     s
+}
+
+/// Distinct settings with how many outer folds chose each, in first-seen
+/// order: "ridge, α = 10 (5 folds)".
+fn tally(chosen: &[Hyper]) -> String {
+    let mut seen: Vec<(Hyper, usize)> = Vec::new();
+    for h in chosen {
+        match seen.iter_mut().find(|(s, _)| s == h) {
+            Some((_, n)) => *n += 1,
+            None => seen.push((*h, 1)),
+        }
+    }
+    seen.iter()
+        .map(|(h, n)| {
+            let folds = if *n == 1 { "fold" } else { "folds" };
+            format!("{} ({n} {folds})", hyper_text(h))
+        })
+        .collect::<Vec<_>>()
+        .join("; ")
 }
 
 /// The metrics in display order with their names.
@@ -291,7 +310,9 @@ fn optimism(r: &FitReport) -> String {
         "<h2>Random split beside the chosen split</h2>\n<p>The same procedure scored under a \
          random split. The difference is the optimism a random split hides: near-duplicate \
          rows fall on both sides of a random split, so it flatters the model, while the chosen \
-         split ({}) keeps them together as new candidates will be.</p>\n{}",
+         split ({}) keeps them together as new candidates will be. Optimism shows as a \
+         negative difference for MSE, RMSE and MAE and a positive one for q² and the \
+         correlations.</p>\n{}",
         escape(&r.settings.split),
         table(
             "optimism",
@@ -379,7 +400,7 @@ fn curve_figure(c: &Curve) -> String {
     plot.legend(&[("sw-train", "training MSE"), ("sw-test", "test MSE")]);
     let title = format!("{}: MSE against {sym}", c.family);
     format!(
-        "<figure>\n{}\n<figcaption>{} Chosen: {}.</figcaption>\n</figure>\n",
+        "<figure>\n{}\n<figcaption>{}. Chosen: {}.</figcaption>\n</figure>\n",
         plot.finish(&title),
         escape(&title),
         escape(&held)
@@ -505,7 +526,7 @@ fn domain(r: &FitReport) -> String {
             format!(
                 "{} ({} % of the variance)",
                 d.components,
-                num(100.0 * d.explained_variance)
+                short(100.0 * d.explained_variance)
             ),
         ],
         vec![

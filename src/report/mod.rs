@@ -251,6 +251,39 @@ pub const GENERAL_CAUTIONS: [&str; 4] = [
     "Follow local practice and regulations.",
 ];
 
+/// `t` as an RFC 3339 timestamp in UTC to the second, such as
+/// `2025-03-14T09:26:53Z`, the form of [`FitReport::created_at`].
+pub fn rfc3339_utc(t: std::time::SystemTime) -> String {
+    let secs = match t.duration_since(std::time::UNIX_EPOCH) {
+        Ok(d) => d.as_secs() as i64,
+        Err(e) => -(e.duration().as_secs_f64().ceil() as i64),
+    };
+    let (days, of_day) = (secs.div_euclid(86_400), secs.rem_euclid(86_400));
+    let (y, m, d) = civil_from_days(days);
+    format!(
+        "{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}Z",
+        of_day / 3600,
+        of_day % 3600 / 60,
+        of_day % 60
+    )
+}
+
+/// The proleptic Gregorian date of a day count since 1970-01-01 (Howard
+/// Hinnant, "chrono-Compatible Low-Level Date Algorithms", civil_from_days:
+/// eras of 400 years, years starting in March so the leap day comes last).
+fn civil_from_days(days: i64) -> (i64, i64, i64) {
+    let z = days + 719_468;
+    let era = z.div_euclid(146_097);
+    let doe = z.rem_euclid(146_097);
+    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
+    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
+    let mp = (5 * doy + 2) / 153;
+    let d = doy - (153 * mp + 2) / 5 + 1;
+    let m = if mp < 10 { mp + 3 } else { mp - 9 };
+    let y = yoe + era * 400 + i64::from(m <= 2);
+    (y, m, d)
+}
+
 /// Reading back the `null` that serde_json writes for a non-finite number.
 mod nullable {
     use super::*;

@@ -93,7 +93,7 @@ impl Pca {
         let centred = &x - &mean;
         let (values, vectors) = spectrum(centred.view())?;
         let total_variance: f64 = values.iter().sum();
-        if !(total_variance > 0.0) {
+        if total_variance.is_nan() || total_variance <= 0.0 {
             return Err(Error::NoVariance);
         }
         let largest = values.first().copied().unwrap_or(0.0);
@@ -196,7 +196,7 @@ impl Pca {
             .iter()
             .chain(self.components.iter())
             .all(|v| v.is_finite());
-        if !finite || !(self.total_variance.is_finite() && self.total_variance > 0.0) {
+        if !(finite && self.total_variance.is_finite() && self.total_variance > 0.0) {
             return bad("non-finite mean, component or total variance".into());
         }
         if let Some(v) = self

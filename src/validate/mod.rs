@@ -92,6 +92,11 @@ pub enum Error {
          ({distinct} distinct times); use fewer folds or a finer time column"
     )]
     TooFewDistinctTimes { distinct: usize, folds: usize },
+    #[error("the inner folds of outer fold {outer_fold} cannot be made: {source}")]
+    InnerFolds {
+        outer_fold: usize,
+        source: Box<Error>,
+    },
     #[error("k-means clustering failed: {message}; try another seed or --split random")]
     KMeans { message: String },
     #[error("inconsistent shapes: {what}")]

@@ -25,6 +25,14 @@ const PERMUTATION_STREAM: u64 = 1_000;
 const RANDOM_SPLIT_STREAM: u64 = 2_000;
 
 /// The settings of one validation.
+///
+/// | Name | Default | Purpose | Range |
+/// | --- | --- | --- | --- |
+/// | `k_outer` | 5 | outer folds: the claims are their mean ± SE | 2 ..= rows (see `data::rows_needed`) |
+/// | `k_inner` | 5 | inner folds: the one-SE selection | 2 ..= outer-training rows |
+/// | `seed` | 1 | every random choice (folds, permutations) derives from it | any u64 |
+/// | `n_permutations` | 10 | y-randomisation permutations; the p-value cannot go below 1/(P+1) | 0 (off) or more |
+/// | `compare_random_split` | on | rerun the chosen family under random folds | on, off |
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 pub struct NestedSettings {
     /// Outer folds (the claims), default 5.
@@ -395,7 +403,11 @@ impl NestedPass<'_> {
         let inner_seed = derive_seed(self.seed, 1 + f as u64);
         let inner_folds = self
             .design
-            .folds(&train_rows, self.settings.k_inner, inner_seed)?;
+            .folds(&train_rows, self.settings.k_inner, inner_seed)
+            .map_err(|source| Error::InnerFolds {
+                outer_fold: f,
+                source: Box::new(source),
+            })?;
         let inner = grid_cv(
             grid,
             xs_train.view(),
@@ -430,7 +442,12 @@ impl NestedPass<'_> {
             inner_best_mse: inner
                 .best(0)
                 .map_or(f64::NAN, |g| inner.test_mse[[g, 0]].mean),
-            inner_test_predictions: inner.extra.slice(s![.., g0, ..]).t().to_owned(),
+            inner_test_predictions: inner
+                .extra
+                .slice(s![.., g0, ..])
+                .t()
+                .as_standard_layout()
+                .into_owned(),
             inner_residuals,
             inner_folds,
             test_predictions: test_pred.column(0).to_vec(),

@@ -79,6 +79,11 @@ def write_csv(data, target, names):
     (FIXTURES / "diabetes.csv").write_text("\n".join(lines) + "\n")
 
 
+def column_matrix(predictions, rows):
+    """Rows × targets, whatever shape scikit-learn squeezes to."""
+    return np.asarray(predictions).reshape(rows, -1)
+
+
 def assert_no_neighbour_ties(dist_rows, ks):
     """The k nearest must be unambiguous, or the comparison would depend on
     how each library breaks ties."""
@@ -100,8 +105,8 @@ def ridge_cases(x_tr, y_tr, x_te, alphas):
                 # Targets × descriptors, whatever shape scikit-learn squeezes to.
                 "coef": r10(np.atleast_2d(model.coef_)),
                 "intercept": r10(np.atleast_1d(model.intercept_)),
-                "predict_test": r10(model.predict(x_te)),
-                "predict_train": r10(model.predict(x_tr)),
+                "predict_test": r10(column_matrix(model.predict(x_te), len(x_te))),
+                "predict_train": r10(column_matrix(model.predict(x_tr), len(x_tr))),
             }
         )
     return out
@@ -118,9 +123,9 @@ def kernel_ridge_cases(x_tr, y_tr, x_te, settings):
             {
                 "gamma": gamma,
                 "alpha": alpha,
-                "dual_coef": r10(model.dual_coef_),
-                "predict_test": r10(model.predict(x_te) + mean),
-                "predict_train": r10(model.predict(x_tr) + mean),
+                "dual_coef": r10(column_matrix(model.dual_coef_, len(x_tr))),
+                "predict_test": r10(column_matrix(model.predict(x_te), len(x_te)) + mean),
+                "predict_train": r10(column_matrix(model.predict(x_tr), len(x_tr)) + mean),
             }
         )
     return out
@@ -135,10 +140,10 @@ def knn_cases(x_tr, y_tr, x_te, ks):
         out.append(
             {
                 "k": k,
-                "predict_test": r10(model.predict(x_te)),
+                "predict_test": r10(column_matrix(model.predict(x_te), len(x_te))),
                 # Predicting the training rows counts each row as its own
                 # nearest neighbour (distance 0), as plumbline's train curve does.
-                "predict_train": r10(model.predict(x_tr)),
+                "predict_train": r10(column_matrix(model.predict(x_tr), len(x_tr))),
             }
         )
     return out

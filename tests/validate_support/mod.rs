@@ -111,3 +111,68 @@ pub fn mean_predict(
 
 /// A progress callback that ignores its reports.
 pub fn quiet(_stage: &str, _done: usize, _total: usize) {}
+
+/// k-nearest-neighbour regression by brute force: the mean target of the
+/// `k` training rows nearest in Euclidean distance (ties by row order).
+/// Training rows are predicted with themselves included, as scikit-learn's
+/// `KNeighborsRegressor.predict` does on its own training set.
+pub fn knn_predict(
+    grid: &Grid,
+    x_train: ArrayView2<f64>,
+    y_train: ArrayView2<f64>,
+    x_test: ArrayView2<f64>,
+) -> GridPredictions {
+    let (g, c) = (grid.points.len(), y_train.ncols());
+    let predict_rows = |x: ArrayView2<f64>| {
+        let mut out = Array3::zeros((g, x.nrows(), c));
+        for (i, row) in x.axis_iter(Axis(0)).enumerate() {
+            let mut order: Vec<(f64, usize)> = x_train
+                .axis_iter(Axis(0))
+                .enumerate()
+                .map(|(j, t)| ((&t - &row).mapv(|d| d * d).sum(), j))
+                .collect();
+            order.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1)));
+            for (gi, point) in grid.points.iter().enumerate() {
+                let Hyper::Knn { k } = *point else {
+                    panic!("the reference k-NN model only takes k-NN settings");
+                };
+                let k = k.min(order.len());
+                for ci in 0..c {
+                    let sum: f64 = order[..k].iter().map(|&(_, j)| y_train[[j, ci]]).sum();
+                    out[[gi, i, ci]] = sum / k as f64;
+                }
+            }
+        }
+        out
+    };
+    GridPredictions {
+        test: predict_rows(x_test),
+        train: predict_rows(x_train),
+    }
+}
+
+pub fn knn_grid(ks: &[usize]) -> Grid {
+    Grid {
+        family: Family::Knn,
+        points: ks.iter().map(|&k| Hyper::Knn { k }).collect(),
+    }
+}
+
+/// A ridge grid from 10⁴ down to 10⁻², simplest (largest penalty) first.
+pub fn default_ridge_grid() -> Grid {
+    ridge_grid(
+        &(0..13)
+            .map(|i| 10f64.powf(4.0 - 0.5 * i as f64))
+            .collect::<Vec<_>>(),
+    )
+}
+
+/// Seeded standard-normal-ish noise (a sum of uniforms: Irwin–Hall with 12
+/// terms, mean 0, variance 1), enough for tests that need no exact law.
+pub fn noise(rows: usize, cols: usize, seed: u64) -> Array2<f64> {
+    use rand::{Rng, SeedableRng};
+    let mut rng = rand_xoshiro::Xoshiro256PlusPlus::seed_from_u64(seed);
+    Array2::from_shape_fn((rows, cols), |_| {
+        (0..12).map(|_| rng.gen_range(0.0..1.0)).sum::<f64>() - 6.0
+    })
+}
