@@ -65,6 +65,16 @@ pub fn record_id(request_id: &str, position: usize) -> String {
     format!("{request_id}-{position:06}")
 }
 
+/// The request id and position a record id names, if it is one of ours.
+pub fn parse_record_id(record_id: &str) -> Option<(&str, i64)> {
+    let (request, position) = record_id.rsplit_once('-')?;
+    parse_request_id(request)?;
+    if position.is_empty() || !position.bytes().all(|b| b.is_ascii_digit()) {
+        return None;
+    }
+    Some((request, position.parse().ok()?))
+}
+
 fn now_micros() -> u64 {
     SystemTime::now()
         .duration_since(UNIX_EPOCH)
@@ -120,5 +130,15 @@ mod tests {
         let c = record_id("0000000000000100", 0);
         assert!(a < b && b < c, "{a} {b} {c}");
         assert_eq!(b, "00000000000000ff-000010");
+        assert_eq!(parse_record_id(&b), Some(("00000000000000ff", 10)));
+        for bad in [
+            "",
+            "00000000000000ff",
+            "xyz-1",
+            "00000000000000ff-",
+            "00000000000000ff-1a",
+        ] {
+            assert_eq!(parse_record_id(bad), None, "{bad}");
+        }
     }
 }

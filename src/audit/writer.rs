@@ -18,8 +18,11 @@ use tokio::sync::{mpsc, oneshot};
 use super::sqlite::{max_request_id, open_for_writing, write_entries};
 use super::{Entry, Error, Options, RequestIds};
 
+/// Where the writer sends a commit's outcome.
+type Reply = oneshot::Sender<Result<(), Error>>;
+
 enum Job {
-    Commit(Box<Entry>, oneshot::Sender<Result<(), Error>>),
+    Commit(Box<Entry>, Reply),
     Close,
 }
 
@@ -99,8 +102,7 @@ fn run(mut conn: Connection, mut rx: mpsc::Receiver<Job>, options: &Options) -> 
     let mut last_checkpoint = Instant::now();
     let batch_max = options.batch_max.max(1);
     let mut closing = false;
-    let mut group: Vec<(Box<Entry>, oneshot::Sender<Result<(), Error>>)> =
-        Vec::with_capacity(batch_max);
+    let mut group: Vec<(Box<Entry>, Reply)> = Vec::with_capacity(batch_max);
     loop {
         // Wait for the first job, then take what else is already waiting.
         let first = if closing {
@@ -142,7 +144,7 @@ fn run(mut conn: Connection, mut rx: mpsc::Receiver<Job>, options: &Options) -> 
 /// fate of its own entry.
 fn commit_group(
     conn: &mut Connection,
-    group: &mut Vec<(Box<Entry>, oneshot::Sender<Result<(), Error>>)>,
+    group: &mut Vec<(Box<Entry>, Reply)>,
     stats: &mut WriterStats,
 ) {
     let entries: Vec<&Entry> = group.iter().map(|(e, _)| e.as_ref()).collect();

@@ -51,7 +51,7 @@ pub enum Error {
     Load {
         origin: String,
         #[source]
-        source: config::ConfigError,
+        source: Box<config::ConfigError>,
     },
     #[error("setting `{key}` = {value} is invalid: {why}")]
     Invalid {
@@ -230,7 +230,7 @@ impl Settings {
                 .set_override(*key, value.clone())
                 .map_err(|source| Error::Load {
                     origin: format!("override {key}"),
-                    source,
+                    source: Box::new(source),
                 })?;
         }
         if !overrides.is_empty() {
@@ -243,7 +243,7 @@ impl Settings {
                 .and_then(|c| c.try_deserialize())
                 .map_err(|source| Error::Load {
                     origin: origin.clone(),
-                    source,
+                    source: Box::new(source),
                 })?;
         settings.check()?;
         Ok(settings)
