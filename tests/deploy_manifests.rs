@@ -27,7 +27,6 @@ fn toml(text: &str) -> config::Config {
 /// What the example config says, as the checks need it.
 struct Settings {
     listen: String,
-    metrics_listen: String,
     bundles_dir: String,
     audit_path: String,
     shutdown_grace_ms: i64,
@@ -38,7 +37,6 @@ fn settings() -> Settings {
     let get = |k: &str| c.get_string(k).unwrap_or_else(|e| panic!("{k}: {e}"));
     Settings {
         listen: get("server.listen"),
-        metrics_listen: get("metrics.listen"),
         bundles_dir: get("models.dir"),
         audit_path: get("audit.path"),
         shutdown_grace_ms: c.get_int("server.shutdown_grace_ms").expect("grace"),
@@ -183,7 +181,6 @@ fn probes_and_ports_match_the_configured_listen_ports() {
         s.listen
     );
     let grpc = port_of(&s.listen);
-    let metrics = port_of(&s.metrics_listen);
     let c = container(&deployment());
     for probe in ["startupProbe", "livenessProbe", "readinessProbe"] {
         let p = &c[probe]["grpc"]["port"];
@@ -195,14 +192,10 @@ fn probes_and_ports_match_the_configured_listen_ports() {
     }
     let ports = list(&c["ports"]);
     assert_eq!(named(&ports, "grpc")["containerPort"].as_i64(), Some(grpc));
-    assert_eq!(
-        named(&ports, "metrics")["containerPort"].as_i64(),
-        Some(metrics)
-    );
 
     let svc = find("Service", "plumbline");
     let sports = list(&svc["spec"]["ports"]);
-    for (name, port) in [("grpc", grpc), ("metrics", metrics)] {
+    for (name, port) in [("grpc", grpc)] {
         let p = named(&sports, name);
         assert_eq!(p["port"].as_i64(), Some(port));
         // A named target must name a container port that has that number.
@@ -531,4 +524,19 @@ fn the_autoscaler_holds_one_replica_while_the_audit_store_is_sqlite() {
     assert_eq!(hpas[0]["spec"]["maxReplicas"].as_i64(), Some(1));
     assert_eq!(dep["spec"]["replicas"].as_i64(), Some(1));
     assert_eq!(dep["spec"]["strategy"]["type"].as_str(), Some("Recreate"));
+}
+
+#[test]
+fn the_example_config_is_accepted_by_the_server_settings() {
+    // The same loader `plumbline serve --config` uses, unknown keys rejected:
+    // a key the server does not know would stop the container at start-up.
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("deploy/plumbline.toml");
+    let loaded = plumbline::service::settings::Settings::load(
+        Some(&path),
+        &std::collections::HashMap::new(),
+        &[],
+    );
+    let s = loaded.unwrap_or_else(|e| panic!("deploy/plumbline.toml is refused: {e}"));
+    assert_eq!(s.server.listen.port(), 7420);
+    assert_eq!(s.audit.path, Path::new("/var/lib/plumbline/audit/audit.db"));
 }
