@@ -8,9 +8,10 @@
 //! - kernel ridge bundle of the same size: batches of 1,000 → candidates/s.
 //!
 //! Run: `cargo bench --bench serve` (about two to four minutes on 2 cores,
-//! most of it fitting the kernel ridge bundle; `PLUMBLINE_BENCH_RIDGE_ONLY=1`
-//! skips the kernel ridge part). Every loop is bounded in both time and
-//! count.
+//! most of it fitting the kernel ridge bundle; `SERVE_BENCH_RIDGE_ONLY=1`
+//! skips the kernel ridge part; `PLUMBLINE_*` variables set the server's
+//! settings, e.g. `PLUMBLINE_AUDIT__SYNCHRONOUS=normal`). Every loop is
+//! bounded in both time and count.
 
 use std::io::{BufRead, BufReader, Write};
 use std::path::{Path, PathBuf};
@@ -29,7 +30,7 @@ const ROWS: usize = 5_000;
 const DESCRIPTORS: usize = 200;
 const BATCH: usize = 1_000;
 const CLIENTS: usize = 4;
-const CHILD_ENV: &str = "PLUMBLINE_BENCH_SERVE_DIR";
+const CHILD_ENV: &str = "SERVE_BENCH_CHILD_DIR";
 
 fn main() {
     if let Ok(dir) = std::env::var(CHILD_ENV) {
@@ -60,7 +61,7 @@ fn main() {
         rss as f64 / 1024.0
     );
 
-    if std::env::var("PLUMBLINE_BENCH_RIDGE_ONLY").is_ok() {
+    if std::env::var("SERVE_BENCH_RIDGE_ONLY").is_ok() {
         return;
     }
     let kernel_dir = work.path().join("kernel");
@@ -144,7 +145,9 @@ fn write_bundle(dir: &Path, family: Family) {
 
 /// The server child: serves `dir/bundles` until its stdin closes.
 fn serve_child(dir: &Path) {
-    let mut settings = plumbline::service::Settings::default();
+    // Settings from PLUMBLINE_* variables, e.g. PLUMBLINE_AUDIT__SYNCHRONOUS=normal.
+    let mut settings =
+        plumbline::service::Settings::load_from_process_env(None, &[]).expect("settings");
     settings.models.dir = dir.join("bundles");
     settings.audit.path = dir.join("audit.db");
     settings.models.reload_poll_ms = 0;

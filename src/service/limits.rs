@@ -24,12 +24,6 @@ pub fn limit_request(req: http::Request<Body>, limit: usize) -> http::Request<Bo
     req.map(|b| Body::new(FrameLimit::new(b, limit)))
 }
 
-/// Statuses from reading a stream's messages pass through unchanged: the
-/// size limit's own status already names the setting.
-pub fn explain(status: Status) -> Status {
-    status
-}
-
 struct FrameLimit {
     inner: Body,
     limit: usize,

@@ -69,7 +69,9 @@ impl Scoring for ScoringApi {
             let ended = engine.score_stream(inbound, &who, ChannelSend(tx)).await;
             let status = match ended {
                 Ok(()) => return,
-                Err(StreamEnd::Inbound(status)) => super::limits::explain(status),
+                // Reading the client's messages failed; the size limit's
+                // status already names its setting.
+                Err(StreamEnd::Inbound(status)) => status,
                 Err(StreamEnd::Failed(e)) => to_status(&e),
             };
             let _ = errors.send(Err(status)).await;
