@@ -195,16 +195,15 @@ fn probes_and_ports_match_the_configured_listen_ports() {
 
     let svc = find("Service", "plumbline");
     let sports = list(&svc["spec"]["ports"]);
-    for (name, port) in [("grpc", grpc)] {
-        let p = named(&sports, name);
-        assert_eq!(p["port"].as_i64(), Some(port));
-        // A named target must name a container port that has that number.
-        let target = match p["targetPort"].as_str() {
-            Some(n) => named(&ports, n)["containerPort"].as_i64(),
-            None => p["targetPort"].as_i64(),
-        };
-        assert_eq!(target, Some(port), "Service port {name}");
-    }
+    let (name, port) = ("grpc", grpc);
+    let p = named(&sports, name);
+    assert_eq!(p["port"].as_i64(), Some(port));
+    // A named target must name a container port that has that number.
+    let target = match p["targetPort"].as_str() {
+        Some(n) => named(&ports, n)["containerPort"].as_i64(),
+        None => p["targetPort"].as_i64(),
+    };
+    assert_eq!(target, Some(port), "Service port {name}");
     assert_eq!(named(&sports, "grpc")["appProtocol"].as_str(), Some("grpc"));
     // The Service selects the pods of the Deployment.
     let labels = &deployment()["spec"]["template"]["metadata"]["labels"];
@@ -222,10 +221,7 @@ fn probes_and_ports_match_the_configured_listen_ports() {
                 .collect::<Vec<_>>()
         })
         .collect();
-    assert!(
-        exposed.contains(&grpc) && exposed.contains(&metrics),
-        "{exposed:?}"
-    );
+    assert!(exposed.contains(&grpc), "{exposed:?}");
 }
 
 #[test]
