@@ -96,6 +96,17 @@ pub fn scored_rows(
         .collect()
 }
 
+/// The columns `predict` writes; `score` writes these, then status and record id.
+pub const COLUMNS: [&str; 7] = [
+    "id",
+    "prediction",
+    "lower",
+    "upper",
+    "verdict",
+    "typicality",
+    "rank",
+];
+
 fn opt(v: Option<f64>) -> String {
     // Shortest representation that reads back to the same f64.
     v.map(|x| format!("{x:?}")).unwrap_or_default()
@@ -104,15 +115,7 @@ fn opt(v: Option<f64>) -> String {
 fn write_rows(path: &Path, rows: &[Row]) -> anyhow::Result<()> {
     let mut w =
         csv::Writer::from_path(path).with_context(|| format!("creating {}", path.display()))?;
-    w.write_record([
-        "id",
-        "prediction",
-        "lower",
-        "upper",
-        "verdict",
-        "typicality",
-        "rank",
-    ])?;
+    w.write_record(COLUMNS)?;
     for r in rows {
         let rank = if r.rank > 0 {
             r.rank.to_string()

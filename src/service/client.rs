@@ -204,17 +204,10 @@ fn write_results(
 ) -> anyhow::Result<()> {
     let mut w =
         csv::Writer::from_path(out).with_context(|| format!("creating {}", out.display()))?;
-    w.write_record([
-        "id",
-        "prediction",
-        "lower",
-        "upper",
-        "verdict",
-        "typicality",
-        "rank",
-        "status",
-        "record_id",
-    ])?;
+    let header = crate::cli::predict::COLUMNS
+        .iter()
+        .chain(&["status", "record_id"]);
+    w.write_record(header)?;
     // Shortest text that reads back to the same f64, as `predict` writes.
     let num = |v: Option<f64>| v.map(|x| format!("{x:?}")).unwrap_or_default();
     for r in results {
