@@ -21,6 +21,7 @@ pub mod domain;
 pub mod fit;
 pub mod linalg;
 pub mod models;
+pub mod monitor;
 pub mod report;
 pub mod scoring;
 pub mod service;
