@@ -7,7 +7,8 @@ use plumbline::pb;
 use plumbline::pb::outcomes_client::OutcomesClient;
 
 use crate::fixtures::{self, ModelSpec};
-use crate::util::{TestServer, candidates, request};
+use crate::util::TestServer;
+use crate::{candidates, request};
 
 fn by_record(id: &str, observed: f64) -> pb::OutcomeRow {
     pb::OutcomeRow {
