@@ -9,9 +9,12 @@
 //!   requests in groups; a caller is answered only after its records are
 //!   committed, which is what lets the service promise that nothing it
 //!   acknowledged is lost;
+//! - [`outcomes`]: lab results recorded against candidate records, with
+//!   their history, and the reads the outcome monitor needs;
 //! - [`ids`]: time-ordered request ids and the record ids derived from them.
 
 pub mod ids;
+pub mod outcomes;
 pub mod sqlite;
 pub mod writer;
 

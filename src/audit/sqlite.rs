@@ -20,9 +20,10 @@ pub struct Migration {
 
 /// The schema, in order; `PRAGMA user_version` is the number applied. Add a
 /// table by appending one entry; never edit an entry that has shipped.
-pub const MIGRATIONS: &[Migration] = &[Migration {
-    name: "requests, candidates and stream ranks",
-    sql: "
+pub const MIGRATIONS: &[Migration] = &[
+    Migration {
+        name: "requests, candidates and stream ranks",
+        sql: "
         CREATE TABLE requests (
             request_id    TEXT PRIMARY KEY,
             time_us       INTEGER NOT NULL,
@@ -78,7 +79,9 @@ pub const MIGRATIONS: &[Migration] = &[Migration {
         ) STRICT;
         CREATE INDEX stream_ranks_by_stream ON stream_ranks(stream_id, rank);
     ",
-}];
+    },
+    super::outcomes::MIGRATION,
+];
 
 /// Opens (creating if needed) the database for writing and brings its
 /// schema up to date.

@@ -9,6 +9,7 @@
 //! - [`engine`]: a call from request to committed answer;
 //! - [`convert`]: core types to wire messages and audit records;
 //! - [`scoring_api`]: the tonic handlers, thin;
+//! - [`outcomes_api`]: lab results in, realised calibration and alarms out;
 //! - [`status`]: the one mapping from errors to gRPC statuses;
 //! - [`limits`]: the message-size limit that names its setting;
 //! - [`client`]: the `plumbline score` client;
@@ -20,6 +21,7 @@ pub mod convert;
 pub mod engine;
 mod error;
 pub mod limits;
+pub mod outcomes_api;
 pub mod registry;
 pub mod scoring_api;
 pub mod settings;
@@ -95,6 +97,11 @@ pub fn card_facts(card: &crate::bundle::Card) -> CardFacts {
         training_data_sha256: card.data_sha256.clone(),
         created_at: card.created_at.clone(),
         cautions: card.cautions.clone(),
+        oof_outside_share: {
+            let total: usize = d.oof_verdict_counts.values().sum();
+            let outside = d.oof_verdict_counts.get("outside").copied().unwrap_or(0);
+            (total > 0).then(|| outside as f64 / total as f64)
+        },
     }
 }
 
@@ -166,6 +173,20 @@ pub async fn run_with_loader(
     let scoring = pb::scoring_server::ScoringServer::new(ScoringApi::new(engine.clone()))
         .max_decoding_message_size(limit)
         .max_encoding_message_size(limit);
+    let outcomes_api = match outcomes_api::OutcomesApi::open(
+        registry.clone(),
+        &settings.audit.path,
+        settings.audit.synchronous,
+    ) {
+        Ok(api) => api,
+        Err(e) => {
+            let _ = writer.close().await;
+            return Err(e.into());
+        }
+    };
+    let outcomes = pb::outcomes_server::OutcomesServer::new(outcomes_api)
+        .max_decoding_message_size(limit)
+        .max_encoding_message_size(limit);
     let local = listener.local_addr().ok();
     let incoming = TcpIncoming::from(listener).with_nodelay(Some(true));
 
@@ -188,6 +209,7 @@ pub async fn run_with_loader(
         .add_service(reflection_v1)
         .add_service(reflection_v1alpha)
         .add_service(scoring)
+        .add_service(outcomes)
         .serve_with_incoming_shutdown(incoming, signal);
 
     let grace = Duration::from_millis(settings.server.shutdown_grace_ms);

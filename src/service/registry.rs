@@ -70,6 +70,9 @@ pub struct CardFacts {
     pub training_data_sha256: String,
     pub created_at: String,
     pub cautions: Vec<String>,
+    /// Share of training rows judged outside the domain out-of-fold: what
+    /// the outside-share alarm expects of new queries. None when unknown.
+    pub oof_outside_share: Option<f64>,
 }
 
 /// One loaded bundle.

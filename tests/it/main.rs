@@ -7,6 +7,7 @@ mod audit_trail;
 mod cli_client;
 mod fixtures;
 mod ops;
+mod outcomes;
 mod python;
 mod reload;
 mod scoring;
