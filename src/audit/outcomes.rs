@@ -18,16 +18,22 @@ pub const MIGRATION: Migration = Migration {
     sql: "
         CREATE TABLE outcomes (
             outcome_id    INTEGER PRIMARY KEY,
-            record_id     TEXT NOT NULL REFERENCES candidates(record_id),
+            record_id     TEXT NOT NULL,
+            request_id    TEXT NOT NULL,
+            position      INTEGER NOT NULL,
             observed      REAL NOT NULL,
             recorded_us   INTEGER NOT NULL,
             source        TEXT NOT NULL,
-            superseded_us INTEGER
+            superseded_us INTEGER,
+            FOREIGN KEY (request_id, position) REFERENCES candidates(request_id, position)
         ) STRICT;
         CREATE UNIQUE INDEX outcomes_current ON outcomes(record_id)
             WHERE superseded_us IS NULL;
         CREATE INDEX outcomes_by_record ON outcomes(record_id, outcome_id);
         CREATE INDEX requests_by_model_time ON requests(model_id, time_us);
+        -- Labs know their own candidate ids; outcomes recorded by candidate id
+        -- and model look them up here.
+        CREATE INDEX candidates_by_candidate ON candidates(candidate_id);
     ",
 };
 
@@ -194,9 +200,14 @@ fn insert(
     now_us: i64,
     source: &str,
 ) -> Result<(), Error> {
+    let (request_id, position) =
+        super::ids::parse_record_id(record_id).ok_or_else(|| Error::Write {
+            message: format!("record id {record_id} is not of the form <request id>-<position>"),
+        })?;
     tx.execute(
-        "INSERT INTO outcomes (record_id, observed, recorded_us, source) VALUES (?1, ?2, ?3, ?4)",
-        params![record_id, observed, now_us, source],
+        "INSERT INTO outcomes (record_id, request_id, position, observed, recorded_us, source)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+        params![record_id, request_id, position, observed, now_us, source],
     )
     .map_err(write_err)?;
     Ok(())
@@ -205,17 +216,21 @@ fn insert(
 fn resolve(conn: &Connection, target: &Target) -> Result<Result<String, RowResult>, Error> {
     match target {
         Target::Record(id) => {
+            let unknown = || RowResult::UnknownRecord {
+                record_id: id.clone(),
+            };
+            let Some((request_id, position)) = super::ids::parse_record_id(id) else {
+                return Ok(Err(unknown()));
+            };
             let found: Option<String> = conn
                 .query_row(
-                    "SELECT record_id FROM candidates WHERE record_id = ?1",
-                    [id],
+                    "SELECT record_id FROM candidates WHERE request_id = ?1 AND position = ?2",
+                    params![request_id, position],
                     |r| r.get(0),
                 )
                 .optional()
                 .map_err(read_err)?;
-            Ok(found.ok_or_else(|| RowResult::UnknownRecord {
-                record_id: id.clone(),
-            }))
+            Ok(found.ok_or_else(unknown))
         }
         Target::Candidate {
             candidate_id,
@@ -297,7 +312,7 @@ pub fn pairs(
             "SELECT c.record_id, r.time_us, c.status, o.observed, c.prediction, c.lower,
                     c.upper, c.confidence, c.verdict
              FROM outcomes o
-             JOIN candidates c ON c.record_id = o.record_id
+             JOIN candidates c ON c.request_id = o.request_id AND c.position = o.position
              JOIN requests r ON r.request_id = c.request_id
              WHERE o.superseded_us IS NULL AND r.model_id = ?1
                AND r.time_us >= ?2 AND r.time_us < ?3
@@ -330,7 +345,7 @@ pub fn recent_outside(conn: &Connection, model_id: &str, window: u64) -> Result<
             "SELECT coalesce(sum(verdict = 'outside'), 0), count(*) FROM (
                  SELECT c.verdict FROM candidates c JOIN requests r USING (request_id)
                  WHERE r.model_id = ?1 AND c.verdict IS NOT NULL
-                 ORDER BY c.record_id DESC LIMIT ?2)",
+                 ORDER BY r.time_us DESC, c.position DESC LIMIT ?2)",
             params![model_id, window.min(i64::MAX as u64) as i64],
             |r| Ok((r.get(0)?, r.get(1)?)),
         )
@@ -351,7 +366,7 @@ mod tests {
         conn.execute_batch(MIGRATIONS[0].sql).unwrap();
         conn.pragma_update(None, "user_version", 1).unwrap();
         conn.execute(
-            "INSERT INTO requests VALUES ('r1', 1000, 'Score', NULL, NULL, 'm', 'v1', 'b', 0.9,
+            "INSERT INTO requests VALUES ('00000000000003e8', 1000, 'Score', NULL, NULL, 'm', 'v1', 'b', 0.9,
                  NULL, NULL, 3, 2, 0, 1, 0)",
             [],
         )
@@ -369,10 +384,10 @@ mod tests {
                      prediction, lower, upper, confidence, verdict, knn_distance, typicality,
                      beyond_z_threshold, leverage, pca_residual, rank, reason,
                      descriptor_sha256)
-                 VALUES (?1, 'r1', ?2, ?3, ?4, ?5, ?6, ?7, 0.9, ?8, 1, 0.5, 0, 0.1, 0.1, 0, '',
+                 VALUES (?1, '00000000000003e8', ?2, ?3, ?4, ?5, ?6, ?7, 0.9, ?8, 1, 0.5, 0, 0.1, 0.1, 0, '',
                      'h')",
                 params![
-                    format!("r1-{i}"),
+                    crate::audit::ids::record_id("00000000000003e8", i),
                     i as i64,
                     cid,
                     status,
@@ -402,7 +417,7 @@ mod tests {
             .unwrap();
         assert_eq!(n, 3);
         let reader = crate::audit::AuditReader::open(&path).unwrap();
-        let c = reader.candidate("r1-1").unwrap().unwrap();
+        let c = reader.candidate("00000000000003e8-000001").unwrap().unwrap();
         assert_eq!(c.prediction, Some(2.0));
         assert_eq!(c.signals.unwrap().verdict, "border");
         assert_eq!(reader.requests().unwrap().len(), 1);
@@ -421,12 +436,12 @@ mod tests {
         let got = record(
             &mut conn,
             &[
-                row(Target::Record("r1-0".into()), 1.5),
+                row(Target::Record("00000000000003e8-000000".into()), 1.5),
                 row(cand("b", "m"), 2.5),
-                row(Target::Record("r1-0".into()), 9.0),
+                row(Target::Record("00000000000003e8-000000".into()), 9.0),
                 row(Target::Record("nope".into()), 1.0),
                 row(cand("b", "other"), 1.0),
-                row(Target::Record("r1-2".into()), f64::NAN),
+                row(Target::Record("00000000000003e8-000002".into()), f64::NAN),
             ],
             false,
             "lab.csv",
@@ -436,19 +451,19 @@ mod tests {
         assert_eq!(
             got[0],
             RowResult::Recorded {
-                record_id: "r1-0".into()
+                record_id: "00000000000003e8-000000".into()
             }
         );
         assert_eq!(
             got[1],
             RowResult::Recorded {
-                record_id: "r1-1".into()
+                record_id: "00000000000003e8-000001".into()
             }
         );
         assert_eq!(
             got[2],
             RowResult::DuplicateInRequest {
-                record_id: "r1-0".into(),
+                record_id: "00000000000003e8-000000".into(),
                 first_row: 0
             }
         );
@@ -458,7 +473,7 @@ mod tests {
 
         let again = record(
             &mut conn,
-            &[row(Target::Record("r1-0".into()), 1.7)],
+            &[row(Target::Record("00000000000003e8-000000".into()), 1.7)],
             false,
             "x",
             6000,
@@ -467,13 +482,13 @@ mod tests {
         assert_eq!(
             again[0],
             RowResult::AlreadyRecorded {
-                record_id: "r1-0".into(),
+                record_id: "00000000000003e8-000000".into(),
                 existing: 1.5
             }
         );
         let replaced = record(
             &mut conn,
-            &[row(Target::Record("r1-0".into()), 1.7)],
+            &[row(Target::Record("00000000000003e8-000000".into()), 1.7)],
             true,
             "y",
             7000,
@@ -482,11 +497,11 @@ mod tests {
         assert_eq!(
             replaced[0],
             RowResult::Replaced {
-                record_id: "r1-0".into(),
+                record_id: "00000000000003e8-000000".into(),
                 previous: 1.5
             }
         );
-        let h = history(&conn, "r1-0").unwrap();
+        let h = history(&conn, "00000000000003e8-000000").unwrap();
         assert_eq!(h.len(), 2);
         assert_eq!((h[0].observed, h[0].superseded_us), (1.5, Some(7000)));
         assert_eq!((h[1].observed, h[1].superseded_us), (1.7, None));
