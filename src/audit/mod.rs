@@ -9,8 +9,10 @@
 //!   requests in groups; a caller is answered only after its records are
 //!   committed, which is what lets the service promise that nothing it
 //!   acknowledged is lost;
+//! - [`cases`]: the analysts' review cases and their append-only history;
 //! - [`ids`]: time-ordered request ids and the record ids derived from them.
 
+pub mod cases;
 pub mod ids;
 pub mod sqlite;
 pub mod writer;

@@ -9,6 +9,7 @@
 //! - [`engine`]: a call from request to committed answer;
 //! - [`convert`]: core types to wire messages and audit records;
 //! - [`scoring_api`]: the tonic handlers, thin;
+//! - [`review_api`]: the analysts' review queue over the audit store;
 //! - [`status`]: the one mapping from errors to gRPC statuses;
 //! - [`limits`]: the message-size limit that names its setting;
 //! - [`client`]: the `plumbline score` client;
@@ -21,6 +22,7 @@ pub mod engine;
 mod error;
 pub mod limits;
 pub mod registry;
+pub mod review_api;
 pub mod scoring_api;
 pub mod settings;
 pub mod status;
@@ -58,8 +60,11 @@ pub const SCORING_SERVICE: &str =
 pub fn bundle_loader() -> Loader {
     Arc::new(|path: &std::path::Path| {
         let b = crate::bundle::read(path).map_err(|e| e.to_string())?;
+        let mut facts = card_facts(&b.manifest.card);
+        facts.training_ids = Arc::new(b.manifest.training_ids);
+        facts.training_y = Arc::new(b.training_y);
         Ok(Bundle {
-            facts: card_facts(&b.manifest.card),
+            facts,
             scorer: Arc::new(b.model),
         })
     })
@@ -95,6 +100,8 @@ pub fn card_facts(card: &crate::bundle::Card) -> CardFacts {
         training_data_sha256: card.data_sha256.clone(),
         created_at: card.created_at.clone(),
         cautions: card.cautions.clone(),
+        training_ids: Arc::default(),
+        training_y: Arc::default(),
     }
 }
 
@@ -134,6 +141,18 @@ pub async fn run_with_loader(
             return Err(e);
         }
     };
+    // Review opens its own connection; the writer has already migrated.
+    let review_api = match review_api::ReviewApi::open(
+        registry.clone(),
+        &settings.audit.path,
+        settings.audit.synchronous,
+    ) {
+        Ok(api) => api,
+        Err(e) => {
+            let _ = writer.close().await;
+            return Err(e.into());
+        }
+    };
     let engine = Arc::new(Engine::new(
         registry.clone(),
         writer.clone(),
@@ -166,6 +185,9 @@ pub async fn run_with_loader(
     let scoring = pb::scoring_server::ScoringServer::new(ScoringApi::new(engine.clone()))
         .max_decoding_message_size(limit)
         .max_encoding_message_size(limit);
+    let review = pb::review_server::ReviewServer::new(review_api)
+        .max_decoding_message_size(limit)
+        .max_encoding_message_size(limit);
     let local = listener.local_addr().ok();
     let incoming = TcpIncoming::from(listener).with_nodelay(Some(true));
 
@@ -188,6 +210,7 @@ pub async fn run_with_loader(
         .add_service(reflection_v1)
         .add_service(reflection_v1alpha)
         .add_service(scoring)
+        .add_service(review)
         .serve_with_incoming_shutdown(incoming, signal);
 
     let grace = Duration::from_millis(settings.server.shutdown_grace_ms);
