@@ -9,6 +9,7 @@ mod fixtures;
 mod ops;
 mod python;
 mod reload;
+mod review;
 mod scoring;
 mod stream;
 mod util;
