@@ -11,8 +11,10 @@
 //!   acknowledged is lost;
 //! - [`outcomes`]: lab results recorded against candidate records, with
 //!   their history, and the reads the outcome monitor needs;
+//! - [`cases`]: the analysts' review cases and their append-only history;
 //! - [`ids`]: time-ordered request ids and the record ids derived from them.
 
+pub mod cases;
 pub mod ids;
 pub mod outcomes;
 pub mod sqlite;

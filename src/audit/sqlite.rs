@@ -81,6 +81,10 @@ pub const MIGRATIONS: &[Migration] = &[
     ",
     },
     super::outcomes::MIGRATION,
+    Migration {
+        name: "review cases and their decision history",
+        sql: super::cases::MIGRATION_SQL,
+    },
 ];
 
 /// Opens (creating if needed) the database for writing and brings its
@@ -270,7 +274,7 @@ const REQUEST_COLUMNS: &str = "request_id, time_us, method, peer, identity, mode
      model_version, batch_label, confidence, stream_id, chunk, n_candidates, n_scored, \
      n_flagged, n_refused, n_rejected";
 
-const CANDIDATE_COLUMNS: &str = "record_id, request_id, position, candidate_id, status, \
+pub(super) const CANDIDATE_COLUMNS: &str = "record_id, request_id, position, candidate_id, status, \
      prediction, lower, upper, confidence, calibration, verdict, knn_distance, typicality, \
      beyond_z_threshold, leverage, pca_residual, out_of_range, notes, rank, reason, \
      descriptor_sha256, descriptors";
@@ -446,7 +450,7 @@ fn raw_request(r: &rusqlite::Row<'_>) -> rusqlite::Result<RawRequest> {
     })
 }
 
-struct RawCandidate {
+pub(super) struct RawCandidate {
     record: CandidateRecord,
     status: String,
     verdict: Option<String>,
@@ -457,7 +461,7 @@ struct RawCandidate {
     blob: Option<Vec<u8>>,
 }
 
-fn raw_candidate(r: &rusqlite::Row<'_>) -> rusqlite::Result<RawCandidate> {
+pub(super) fn raw_candidate(r: &rusqlite::Row<'_>) -> rusqlite::Result<RawCandidate> {
     Ok(RawCandidate {
         status: r.get(4)?,
         verdict: r.get(10)?,
@@ -487,7 +491,7 @@ fn raw_candidate(r: &rusqlite::Row<'_>) -> rusqlite::Result<RawCandidate> {
 }
 
 impl RawCandidate {
-    fn into_record(self) -> Result<CandidateRecord, Error> {
+    pub(super) fn into_record(self) -> Result<CandidateRecord, Error> {
         let mut rec = self.record;
         let corrupt = |what, detail: String| Error::Corrupt {
             record_id: rec.record_id.clone(),

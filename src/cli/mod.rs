@@ -7,6 +7,7 @@ use std::path::PathBuf;
 use clap::{Args, Parser, Subcommand, ValueEnum};
 
 pub mod bundle_cmd;
+pub mod cases;
 pub mod demo;
 pub mod evaluate;
 pub mod fit;
@@ -42,6 +43,8 @@ pub enum Command {
     Score(ScoreArgs),
     /// Run the whole job on the embedded demo scenario.
     Demo(DemoArgs),
+    /// Review the flagged and refused candidates of a running service.
+    Cases(cases::CasesArgs),
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
@@ -254,6 +257,7 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Serve(args) => serve(&args),
         Command::Score(args) => score(&args),
         Command::Demo(args) => demo::run(&args),
+        Command::Cases(args) => cases::run(&args),
     }
 }
 

@@ -10,6 +10,7 @@
 //! - [`convert`]: core types to wire messages and audit records;
 //! - [`scoring_api`]: the tonic handlers, thin;
 //! - [`outcomes_api`]: lab results in, realised calibration and alarms out;
+//! - [`review_api`]: the analysts' review queue over the audit store;
 //! - [`status`]: the one mapping from errors to gRPC statuses;
 //! - [`limits`]: the message-size limit that names its setting;
 //! - [`client`]: the `plumbline score` client;
@@ -23,6 +24,7 @@ mod error;
 pub mod limits;
 pub mod outcomes_api;
 pub mod registry;
+pub mod review_api;
 pub mod scoring_api;
 pub mod settings;
 pub mod status;
@@ -60,8 +62,11 @@ pub const SCORING_SERVICE: &str =
 pub fn bundle_loader() -> Loader {
     Arc::new(|path: &std::path::Path| {
         let b = crate::bundle::read(path).map_err(|e| e.to_string())?;
+        let mut facts = card_facts(&b.manifest.card);
+        facts.training_ids = Arc::new(b.manifest.training_ids);
+        facts.training_y = Arc::new(b.training_y);
         Ok(Bundle {
-            facts: card_facts(&b.manifest.card),
+            facts,
             scorer: Arc::new(b.model),
         })
     })
@@ -102,6 +107,8 @@ pub fn card_facts(card: &crate::bundle::Card) -> CardFacts {
             let outside = d.oof_verdict_counts.get("outside").copied().unwrap_or(0);
             (total > 0).then(|| outside as f64 / total as f64)
         },
+        training_ids: Arc::default(),
+        training_y: Arc::default(),
     }
 }
 
@@ -139,6 +146,18 @@ pub async fn run_with_loader(
         Err(e) => {
             let _ = writer.close().await;
             return Err(e);
+        }
+    };
+    // Review opens its own connection; the writer has already migrated.
+    let review_api = match review_api::ReviewApi::open(
+        registry.clone(),
+        &settings.audit.path,
+        settings.audit.synchronous,
+    ) {
+        Ok(api) => api,
+        Err(e) => {
+            let _ = writer.close().await;
+            return Err(e.into());
         }
     };
     let engine = Arc::new(Engine::new(
@@ -187,6 +206,9 @@ pub async fn run_with_loader(
     let outcomes = pb::outcomes_server::OutcomesServer::new(outcomes_api)
         .max_decoding_message_size(limit)
         .max_encoding_message_size(limit);
+    let review = pb::review_server::ReviewServer::new(review_api)
+        .max_decoding_message_size(limit)
+        .max_encoding_message_size(limit);
     let local = listener.local_addr().ok();
     let incoming = TcpIncoming::from(listener).with_nodelay(Some(true));
 
@@ -210,6 +232,7 @@ pub async fn run_with_loader(
         .add_service(reflection_v1alpha)
         .add_service(scoring)
         .add_service(outcomes)
+        .add_service(review)
         .serve_with_incoming_shutdown(incoming, signal);
 
     let grace = Duration::from_millis(settings.server.shutdown_grace_ms);

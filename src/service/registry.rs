@@ -25,6 +25,11 @@ pub trait Scorer: Send + Sync + 'static {
     fn info(&self) -> &ModelInfo;
     /// Scores B rows given in the bundle's descriptor order, all finite.
     fn score(&self, x_raw: ArrayView2<f64>, confidence: f64) -> Vec<CandidateScore>;
+    /// The fitted pipeline behind the scorer, when there is one: review
+    /// needs its standardisation, PCA and neighbour index.
+    fn scoring_model(&self) -> Option<&ScoringModel> {
+        None
+    }
 }
 
 impl Scorer for ScoringModel {
@@ -33,6 +38,9 @@ impl Scorer for ScoringModel {
     }
     fn score(&self, x_raw: ArrayView2<f64>, confidence: f64) -> Vec<CandidateScore> {
         ScoringModel::score(self, x_raw, confidence)
+    }
+    fn scoring_model(&self) -> Option<&ScoringModel> {
+        Some(self)
     }
 }
 
@@ -73,6 +81,11 @@ pub struct CardFacts {
     /// Share of training rows judged outside the domain out-of-fold: what
     /// the outside-share alarm expects of new queries. None when unknown.
     pub oof_outside_share: Option<f64>,
+    /// Training row ids and observed values, in training-row order, so
+    /// review can name a case's nearest training rows and what was measured
+    /// for them. Shared, not copied, between model versions' facts.
+    pub training_ids: Arc<Vec<String>>,
+    pub training_y: Arc<Vec<f64>>,
 }
 
 /// One loaded bundle.

@@ -48,7 +48,7 @@ pub fn loader() -> Loader {
 }
 
 /// Training data: y = w·x + a curved term + noise, x uniform in [-1, 1].
-fn training_table(spec: &ModelSpec) -> Table {
+pub fn training_table(spec: &ModelSpec) -> Table {
     let mut rng = rand_xoshiro::Xoshiro256PlusPlus::seed_from_u64(spec.seed);
     let w: Vec<f64> = (0..N_DESCRIPTORS)
         .map(|_| rng.gen_range(-2.0..2.0))

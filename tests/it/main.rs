@@ -10,6 +10,7 @@ mod ops;
 mod outcomes;
 mod python;
 mod reload;
+mod review;
 mod scoring;
 mod stream;
 mod util;
