@@ -417,7 +417,10 @@ mod tests {
             .unwrap();
         assert_eq!(n, 3);
         let reader = crate::audit::AuditReader::open(&path).unwrap();
-        let c = reader.candidate("00000000000003e8-000001").unwrap().unwrap();
+        let c = reader
+            .candidate("00000000000003e8-000001")
+            .unwrap()
+            .unwrap();
         assert_eq!(c.prediction, Some(2.0));
         assert_eq!(c.signals.unwrap().verdict, "border");
         assert_eq!(reader.requests().unwrap().len(), 1);

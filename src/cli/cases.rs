@@ -237,7 +237,14 @@ fn write_summaries(out: &mut dyn Write, cases: &[pb::CaseSummary]) -> std::io::R
     writeln!(
         out,
         "{:<24} {:<14} {:<12} {:<8} {:<8} {:>10} {:>10} {:<8} {:<18}",
-        "record", "candidate", "model", "status", "verdict", "prediction", "typicality", "state",
+        "record",
+        "candidate",
+        "model",
+        "status",
+        "verdict",
+        "prediction",
+        "typicality",
+        "state",
         "decision"
     )?;
     for c in cases {
@@ -282,14 +289,23 @@ fn csv_field(s: &str) -> String {
     }
 }
 
-async fn connect(endpoint: &str) -> anyhow::Result<ReviewClient<tonic::transport::Channel>> {
-    Ok(ReviewClient::connect(endpoint.to_string())
+/// A channel to the service named by the common flags.
+pub async fn connect_channel(common: &Common) -> anyhow::Result<tonic::transport::Channel> {
+    let endpoint = &common.endpoint;
+    tonic::transport::Endpoint::from_shared(endpoint.clone())
+        .with_context(|| {
+            format!("'{endpoint}' is not a service address; give e.g. http://127.0.0.1:7420")
+        })?
+        .connect()
         .await
-        .with_context(|| format!("connecting to {endpoint}; is `plumbline serve` running there?"))?
-        .max_decoding_message_size(64 << 20))
+        .with_context(|| format!("connecting to {endpoint}; is `plumbline serve` running there?"))
 }
 
-fn failed(call: &str, s: tonic::Status) -> anyhow::Error {
+async fn connect(common: &Common) -> anyhow::Result<ReviewClient<tonic::transport::Channel>> {
+    Ok(ReviewClient::new(connect_channel(common).await?).max_decoding_message_size(64 << 20))
+}
+
+pub fn failed(call: &str, s: tonic::Status) -> anyhow::Error {
     anyhow!("{call} failed ({:?}): {}", s.code(), s.message())
 }
 
@@ -302,7 +318,7 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
             page_size,
             page_token,
         } => {
-            let mut client = connect(&common.endpoint).await?;
+            let mut client = connect(common).await?;
             let page = client
                 .list_cases(pb::ListCasesRequest {
                     filter: Some(filter_to_pb(filter)),
@@ -330,7 +346,7 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
             common,
             neighbours,
         } => {
-            let mut client = connect(&common.endpoint).await?;
+            let mut client = connect(common).await?;
             let d = client
                 .get_case(pb::GetCaseRequest {
                     record_id: record_id.clone(),
@@ -348,7 +364,7 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
             decision,
             note,
         } => {
-            let mut client = connect(&common.endpoint).await?;
+            let mut client = connect(common).await?;
             let r = client
                 .settle_case(pb::SettleCaseRequest {
                     record_id: record_id.clone(),
@@ -376,7 +392,7 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
             groups,
             seed,
         } => {
-            let mut client = connect(&common.endpoint).await?;
+            let mut client = connect(common).await?;
             let r = client
                 .group_cases(pb::GroupCasesRequest {
                     model: model.clone(),
@@ -417,7 +433,11 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
                     r.groups.len(),
                     r.skipped
                 )?;
-                writeln!(out, "{:>5} {:>6} {:>16}  members", "group", "size", "centre distance")?;
+                writeln!(
+                    out,
+                    "{:>5} {:>6} {:>16}  members",
+                    "group", "size", "centre distance"
+                )?;
                 for g in &r.groups {
                     writeln!(
                         out,
@@ -435,7 +455,7 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
             filter,
             out: file,
         } => {
-            let mut client = connect(&common.endpoint).await?;
+            let mut client = connect(common).await?;
             let mut stream = client
                 .export_cases(pb::ExportCasesRequest {
                     filter: Some(filter_to_pb(filter)),
@@ -541,7 +561,11 @@ fn show(out: &mut dyn Write, d: &pb::CaseDetail, as_json: bool) -> anyhow::Resul
             d.confidence,
             opt(s.lower),
             opt(s.upper),
-            if d.calibration.is_empty() { "none" } else { &d.calibration }
+            if d.calibration.is_empty() {
+                "none"
+            } else {
+                &d.calibration
+            }
         )?;
     }
     writeln!(out, "descriptors:")?;
@@ -561,7 +585,11 @@ fn show(out: &mut dyn Write, d: &pb::CaseDetail, as_json: bool) -> anyhow::Resul
             r.leverage_warning,
             r.pca_residual,
             r.pca_residual_limit,
-            if r.beyond_z_threshold { " beyond the Z threshold" } else { "" }
+            if r.beyond_z_threshold {
+                " beyond the Z threshold"
+            } else {
+                ""
+            }
         )?;
         for o in &r.out_of_range {
             writeln!(
@@ -581,7 +609,11 @@ fn show(out: &mut dyn Write, d: &pb::CaseDetail, as_json: bool) -> anyhow::Resul
             d.neighbours_model_version
         )?;
     }
-    writeln!(out, "{:<16} {:>6} {:>12} {:>12}", "nearest training", "row", "distance", "observed")?;
+    writeln!(
+        out,
+        "{:<16} {:>6} {:>12} {:>12}",
+        "nearest training", "row", "distance", "observed"
+    )?;
     for n in &d.neighbours {
         writeln!(
             out,

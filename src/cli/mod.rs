@@ -11,6 +11,7 @@ pub mod cases;
 pub mod demo;
 pub mod evaluate;
 pub mod fit;
+pub mod outcomes;
 pub mod predict;
 
 #[derive(Debug, Parser)]
@@ -45,6 +46,8 @@ pub enum Command {
     Demo(DemoArgs),
     /// Review the flagged and refused candidates of a running service.
     Cases(cases::CasesArgs),
+    /// Record lab results and report a model's realised calibration and alarms.
+    Outcomes(outcomes::OutcomesArgs),
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
@@ -258,6 +261,7 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Score(args) => score(&args),
         Command::Demo(args) => demo::run(&args),
         Command::Cases(args) => cases::run(&args),
+        Command::Outcomes(args) => outcomes::run(&args),
     }
 }
 
