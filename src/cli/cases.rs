@@ -627,10 +627,6 @@ fn show(out: &mut dyn Write, d: &pb::CaseDetail, as_json: bool) -> anyhow::Resul
 
 /// `plumbline cases …` from the command line.
 pub fn run(args: &CasesArgs) -> anyhow::Result<()> {
-    let runtime = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()?;
-    let stdout = std::io::stdout();
-    let mut lock = stdout.lock();
-    runtime.block_on(run_to(args, &mut lock))
+    let mut out = std::io::stdout().lock();
+    super::block_on(run_to(args, &mut out))
 }

@@ -250,6 +250,14 @@ pub struct DemoArgs {
     pub regenerate_data: bool,
 }
 
+/// Runs a client command's future on a one-thread runtime.
+fn block_on<T>(call: impl std::future::Future<Output = anyhow::Result<T>>) -> anyhow::Result<T> {
+    tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()?
+        .block_on(call)
+}
+
 /// Runs a parsed command line.
 pub fn run(cli: Cli) -> anyhow::Result<()> {
     match cli.command {

@@ -431,10 +431,6 @@ fn is_previous(v: i32) -> bool {
 
 /// `plumbline outcomes …` from the command line.
 pub fn run(args: &OutcomesArgs) -> anyhow::Result<()> {
-    let runtime = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()?;
-    let stdout = std::io::stdout();
-    let mut lock = stdout.lock();
-    runtime.block_on(run_to(args, &mut lock))
+    let mut out = std::io::stdout().lock();
+    super::block_on(run_to(args, &mut out))
 }

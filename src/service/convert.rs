@@ -187,6 +187,19 @@ pub fn hyperparameters(h: &Hyper) -> Vec<(&'static str, f64)> {
 
 /// The model card: what a model expects and what its fit claims. Takes the
 /// two halves a bundle provides: the scoring info and the manifest facts.
+/// The bundle's cross-validated claims as the wire carries them.
+pub fn claims_to_pb(facts: &CardFacts) -> Vec<pb::Claim> {
+    facts
+        .claims
+        .iter()
+        .map(|c| pb::Claim {
+            metric: c.metric.clone(),
+            mean: c.mean,
+            se: c.se,
+        })
+        .collect()
+}
+
 pub fn model_card(info: &ModelInfo, facts: &CardFacts, is_default: bool) -> pb::ModelCard {
     let t = &facts.thresholds;
     pb::ModelCard {
@@ -201,15 +214,7 @@ pub fn model_card(info: &ModelInfo, facts: &CardFacts, is_default: bool) -> pb::
             .into_iter()
             .map(|(k, v)| (k.to_string(), v))
             .collect(),
-        claims: facts
-            .claims
-            .iter()
-            .map(|c| pb::Claim {
-                metric: c.metric.clone(),
-                mean: c.mean,
-                se: c.se,
-            })
-            .collect(),
+        claims: claims_to_pb(facts),
         domain: Some(pb::DomainThresholds {
             k: t.k,
             components: t.components,

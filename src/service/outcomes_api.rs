@@ -210,16 +210,7 @@ impl OutcomesApi {
             alpha,
             overall: Some(group("all", &cal.overall)),
             by_verdict: cal.by_verdict.iter().map(|(k, g)| group(k, g)).collect(),
-            claims: model
-                .facts
-                .claims
-                .iter()
-                .map(|c| pb::Claim {
-                    metric: c.metric.clone(),
-                    mean: c.mean,
-                    se: c.se,
-                })
-                .collect(),
+            claims: super::convert::claims_to_pb(&model.facts),
             alarms: alarms
                 .into_iter()
                 .map(|a| pb::MonitorAlarm {
