@@ -6,6 +6,7 @@
 mod audit_trail;
 mod cli_client;
 mod fixtures;
+mod metrics;
 mod ops;
 mod outcomes;
 mod python;
