@@ -30,6 +30,7 @@ struct Settings {
     bundles_dir: String,
     audit_path: String,
     shutdown_grace_ms: i64,
+    metrics_listen: String,
 }
 
 fn settings() -> Settings {
@@ -40,6 +41,7 @@ fn settings() -> Settings {
         bundles_dir: get("models.dir"),
         audit_path: get("audit.path"),
         shutdown_grace_ms: c.get_int("server.shutdown_grace_ms").expect("grace"),
+        metrics_listen: get("metrics.listen"),
     }
 }
 
@@ -222,6 +224,54 @@ fn probes_and_ports_match_the_configured_listen_ports() {
         })
         .collect();
     assert!(exposed.contains(&grpc), "{exposed:?}");
+}
+
+#[test]
+fn the_metrics_port_agrees_between_the_config_and_the_manifests() {
+    let s = settings();
+    assert!(
+        s.metrics_listen.starts_with("0.0.0.0:"),
+        "inside a pod metrics must listen on all interfaces, not {}",
+        s.metrics_listen
+    );
+    let port = port_of(&s.metrics_listen);
+    assert_ne!(port, port_of(&s.listen), "metrics need a port of their own");
+    let dep = deployment();
+    let ports = list(&container(&dep)["ports"]);
+    assert_eq!(
+        named(&ports, "metrics")["containerPort"].as_i64(),
+        Some(port)
+    );
+
+    let svc = find("Service", "plumbline");
+    let sports = list(&svc["spec"]["ports"]);
+    let p = named(&sports, "metrics");
+    assert_eq!(p["port"].as_i64(), Some(port));
+    let target = match p["targetPort"].as_str() {
+        Some(n) => named(&ports, n)["containerPort"].as_i64(),
+        None => p["targetPort"].as_i64(),
+    };
+    assert_eq!(target, Some(port), "Service port metrics");
+
+    // Annotation values are strings in Kubernetes.
+    let notes = &dep["spec"]["template"]["metadata"]["annotations"];
+    assert_eq!(notes["prometheus.io/scrape"].as_str(), Some("true"));
+    assert_eq!(
+        notes["prometheus.io/port"].as_str(),
+        Some(port.to_string().as_str())
+    );
+    assert_eq!(notes["prometheus.io/path"].as_str(), Some("/metrics"));
+
+    let exposed: Vec<i64> = dockerfile()
+        .iter()
+        .filter(|(k, _)| k == "EXPOSE")
+        .flat_map(|(_, r)| {
+            r.split_whitespace()
+                .map(|p| p.parse().expect("port"))
+                .collect::<Vec<_>>()
+        })
+        .collect();
+    assert!(exposed.contains(&port), "{exposed:?}");
 }
 
 #[test]
@@ -534,5 +584,11 @@ fn the_example_config_is_accepted_by_the_server_settings() {
     );
     let s = loaded.unwrap_or_else(|e| panic!("deploy/plumbline.toml is refused: {e}"));
     assert_eq!(s.server.listen.port(), 7420);
+    let metrics = s.metrics.listen_addr().expect("metrics.listen parses");
+    assert_eq!(
+        metrics.map(|a| a.port() as i64),
+        Some(port_of(&settings().metrics_listen)),
+        "the server reads the metrics port the manifests use"
+    );
     assert_eq!(s.audit.path, Path::new("/var/lib/plumbline/audit/audit.db"));
 }

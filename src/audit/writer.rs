@@ -10,7 +10,7 @@
 
 use std::sync::{Arc, Mutex};
 use std::thread::JoinHandle;
-use std::time::Instant;
+use std::time::{Duration, Instant};
 
 use rusqlite::Connection;
 use tokio::sync::{mpsc, oneshot};
@@ -35,6 +35,15 @@ pub struct WriterStats {
     pub checkpoints: u64,
 }
 
+/// Told of every transaction the writer commits and every entry it could
+/// not, from the writer thread (so keep it cheap): the service's metrics.
+pub trait CommitObserver: Send + Sync + 'static {
+    /// A transaction of `entries` entries committed in `elapsed`.
+    fn committed(&self, entries: usize, elapsed: Duration);
+    /// `entries` entries could not be committed; their callers got an error.
+    fn failed(&self, entries: usize);
+}
+
 /// A handle to the writer thread; cheap to clone.
 #[derive(Clone)]
 pub struct AuditWriter {
@@ -46,13 +55,21 @@ impl AuditWriter {
     /// Opens the store (migrating it) and starts the writer. Also returns the
     /// request-id generator, started after the largest id in the store.
     pub fn start(options: &Options) -> Result<(AuditWriter, RequestIds), Error> {
+        AuditWriter::start_observed(options, None)
+    }
+
+    /// [`AuditWriter::start`], telling `observer` of every commit.
+    pub fn start_observed(
+        options: &Options,
+        observer: Option<Arc<dyn CommitObserver>>,
+    ) -> Result<(AuditWriter, RequestIds), Error> {
         let conn = open_for_writing(&options.path, options.synchronous)?;
         let ids = RequestIds::starting_after(max_request_id(&conn)?);
         let (tx, rx) = mpsc::channel(options.queue_depth.max(1));
         let loop_options = options.clone();
         let thread = std::thread::Builder::new()
             .name("audit-writer".into())
-            .spawn(move || run(conn, rx, &loop_options))
+            .spawn(move || run(conn, rx, &loop_options, observer.as_deref()))
             .map_err(|e| Error::WriterGone {
                 reason: format!("could not start the writer thread: {e}"),
             })?;
@@ -63,6 +80,11 @@ impl AuditWriter {
             },
             ids,
         ))
+    }
+
+    /// Entries handed over and not yet taken by the writer thread.
+    pub fn queue_depth(&self) -> usize {
+        self.tx.max_capacity() - self.tx.capacity()
     }
 
     /// Commits one entry; returns once it is durable (or the commit failed).
@@ -97,7 +119,12 @@ impl AuditWriter {
     }
 }
 
-fn run(mut conn: Connection, mut rx: mpsc::Receiver<Job>, options: &Options) -> WriterStats {
+fn run(
+    mut conn: Connection,
+    mut rx: mpsc::Receiver<Job>,
+    options: &Options,
+    observer: Option<&dyn CommitObserver>,
+) -> WriterStats {
     let mut stats = WriterStats::default();
     let mut last_checkpoint = Instant::now();
     let batch_max = options.batch_max.max(1);
@@ -129,7 +156,7 @@ fn run(mut conn: Connection, mut rx: mpsc::Receiver<Job>, options: &Options) -> 
         if group.is_empty() {
             continue;
         }
-        commit_group(&mut conn, &mut group, &mut stats);
+        commit_group(&mut conn, &mut group, &mut stats, observer);
         if last_checkpoint.elapsed() >= options.checkpoint_interval {
             checkpoint(&conn, &mut stats);
             last_checkpoint = Instant::now();
@@ -146,12 +173,17 @@ fn commit_group(
     conn: &mut Connection,
     group: &mut Vec<(Box<Entry>, Reply)>,
     stats: &mut WriterStats,
+    observer: Option<&dyn CommitObserver>,
 ) {
     let entries: Vec<&Entry> = group.iter().map(|(e, _)| e.as_ref()).collect();
+    let started = Instant::now();
     let together = write_in_transaction(conn, &entries);
     stats.transactions += 1;
     match together {
         Ok(()) => {
+            if let Some(o) = observer {
+                o.committed(group.len(), started.elapsed());
+            }
             stats.entries += group.len() as u64;
             for (_, reply) in group.drain(..) {
                 let _ = reply.send(Ok(()));
@@ -159,6 +191,9 @@ fn commit_group(
         }
         Err(first_error) if group.len() == 1 => {
             stats.failed_entries += 1;
+            if let Some(o) = observer {
+                o.failed(1);
+            }
             tracing::error!(error = %first_error, "audit commit failed");
             for (_, reply) in group.drain(..) {
                 let _ = reply.send(Err(Error::Write {
@@ -171,6 +206,7 @@ fn commit_group(
                 "audit group commit failed; retrying each entry alone");
             for (entry, reply) in group.drain(..) {
                 stats.transactions += 1;
+                let started = Instant::now();
                 let result = write_in_transaction(conn, &[entry.as_ref()]).map_err(|e| {
                     tracing::error!(error = %e, request_id = %entry.request.request_id,
                         "audit commit failed");
@@ -179,8 +215,18 @@ fn commit_group(
                     }
                 });
                 match result {
-                    Ok(()) => stats.entries += 1,
-                    Err(_) => stats.failed_entries += 1,
+                    Ok(()) => {
+                        stats.entries += 1;
+                        if let Some(o) = observer {
+                            o.committed(1, started.elapsed());
+                        }
+                    }
+                    Err(_) => {
+                        stats.failed_entries += 1;
+                        if let Some(o) = observer {
+                            o.failed(1);
+                        }
+                    }
                 }
                 let _ = reply.send(result);
             }
@@ -360,6 +406,49 @@ mod tests {
         assert!(matches!(err, Error::Closed), "{err}");
         let reader = AuditReader::open(&path).unwrap();
         assert_eq!(reader.requests().unwrap().len(), 2);
+    }
+
+    #[derive(Default)]
+    struct Seen {
+        committed: std::sync::atomic::AtomicUsize,
+        transactions: std::sync::atomic::AtomicUsize,
+        failed: std::sync::atomic::AtomicUsize,
+    }
+
+    impl CommitObserver for Seen {
+        fn committed(&self, entries: usize, _elapsed: Duration) {
+            use std::sync::atomic::Ordering::Relaxed;
+            self.committed.fetch_add(entries, Relaxed);
+            self.transactions.fetch_add(1, Relaxed);
+        }
+        fn failed(&self, entries: usize) {
+            self.failed
+                .fetch_add(entries, std::sync::atomic::Ordering::Relaxed);
+        }
+    }
+
+    #[tokio::test]
+    async fn the_observer_hears_of_every_commit_and_every_failed_entry() {
+        use std::sync::atomic::Ordering::Relaxed;
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("audit.db");
+        let seen = Arc::new(Seen::default());
+        let observer: Arc<dyn CommitObserver> = seen.clone();
+        let (writer, ids) =
+            AuditWriter::start_observed(&options(&path, 8), Some(observer)).unwrap();
+        assert_eq!(writer.queue_depth(), 0);
+        let good = entry(&ids, 2);
+        writer.commit(good.clone()).await.unwrap();
+        writer.commit(entry(&ids, 1)).await.unwrap();
+        // The same request id again violates the primary key.
+        assert!(writer.commit(good).await.is_err());
+        let stats = writer.close().await.unwrap();
+        assert_eq!(seen.committed.load(Relaxed) as u64, stats.entries);
+        assert_eq!(seen.committed.load(Relaxed), 2);
+        assert_eq!(seen.failed.load(Relaxed) as u64, stats.failed_entries);
+        assert_eq!(seen.failed.load(Relaxed), 1);
+        assert!(seen.transactions.load(Relaxed) >= 1);
+        assert_eq!(writer.queue_depth(), 0);
     }
 
     #[tokio::test]

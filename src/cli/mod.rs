@@ -217,6 +217,9 @@ pub struct ServeArgs {
     /// Audit database path.
     #[arg(long)]
     pub audit: Option<PathBuf>,
+    /// Prometheus metrics address, e.g. 0.0.0.0:9464; empty turns them off.
+    #[arg(long)]
+    pub metrics_listen: Option<String>,
 }
 
 #[derive(Debug, Args)]
@@ -284,6 +287,9 @@ fn serve(args: &ServeArgs) -> anyhow::Result<()> {
     }
     if let Some(a) = &args.audit {
         overrides.push(("audit.path", a.display().to_string()));
+    }
+    if let Some(m) = &args.metrics_listen {
+        overrides.push(("metrics.listen", m.clone()));
     }
     let settings = Settings::load_from_process_env(args.config.as_deref(), &overrides)?;
     let runtime = crate::service::build_runtime(&settings)?;

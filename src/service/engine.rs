@@ -14,6 +14,7 @@ use tracing::Instrument;
 use super::Error;
 use super::batch::{self, CandidateIn, KeepDescriptors, Plan};
 use super::convert;
+use super::metrics::{Metrics, Tally};
 use super::registry::{LoadedModel, Registry};
 use crate::audit::{AuditWriter, Entry, Method, RequestIds, RequestRecord, StreamRank, record_id};
 use crate::conformal::Interval;
@@ -50,6 +51,7 @@ pub struct Engine {
     options: EngineOptions,
     cpu: Semaphore,
     calls: Semaphore,
+    metrics: Option<Arc<Metrics>>,
 }
 
 /// A chunk scored but not yet committed.
@@ -58,6 +60,8 @@ struct Prepared {
     entry: Entry,
     /// Ranked candidates (id, record id, what ranking needs), for streams.
     ranked: Vec<(String, String, CandidateScore)>,
+    /// Candidates by status and verdict, counted once the answer is committed.
+    tally: Tally,
 }
 
 /// Per-request facts that go into the audit record.
@@ -84,6 +88,20 @@ impl Engine {
             audit,
             ids,
             options,
+            metrics: None,
+        }
+    }
+
+    /// Counts every answered candidate in `metrics`.
+    pub fn with_metrics(mut self, metrics: Arc<Metrics>) -> Engine {
+        self.metrics = Some(metrics);
+        self
+    }
+
+    /// Counts a committed answer's candidates: one series lookup per call.
+    fn count(&self, model: &str, tally: &Tally) {
+        if let Some(m) = &self.metrics {
+            m.model(model).record(tally);
         }
     }
 
@@ -136,6 +154,7 @@ impl Engine {
                 )
                 .await?;
             self.audit.commit(prepared.entry).await?;
+            self.count(&prepared.response.model, &prepared.tally);
             log_answer(&prepared.response, started);
             Ok(prepared.response)
         }
@@ -260,6 +279,7 @@ impl Engine {
             prepared.response.overall_ranking = overall;
         }
         self.audit.commit(prepared.entry).await?;
+        self.count(&prepared.response.model, &prepared.tally);
         Ok(prepared.response)
     }
 
@@ -326,7 +346,9 @@ impl Engine {
         let mut results = Vec::with_capacity(batch.outcomes.len());
         let mut records = Vec::with_capacity(batch.outcomes.len());
         let mut ranked = Vec::new();
+        let mut tally = Tally::default();
         for (i, o) in batch.outcomes.iter_mut().enumerate() {
+            tally.add(o.status, o.score.as_ref().map(|s| s.domain.verdict));
             let rid = record_id(&meta.request_id, first_position + i);
             results.push(convert::scored_candidate(o, rid.clone(), &model));
             if keep_ranked
@@ -376,6 +398,7 @@ impl Engine {
                 response,
                 entry,
                 ranked,
+                tally,
             },
             seen,
         ))

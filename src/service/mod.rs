@@ -13,6 +13,7 @@
 //! - [`review_api`]: the analysts' review queue over the audit store;
 //! - [`status`]: the one mapping from errors to gRPC statuses;
 //! - [`limits`]: the message-size limit that names its setting;
+//! - [`metrics`]: Prometheus metrics and their HTTP endpoint;
 //! - [`client`]: the `plumbline score` client;
 //! - [`telemetry`]: tracing setup.
 
@@ -22,6 +23,7 @@ pub mod convert;
 pub mod engine;
 mod error;
 pub mod limits;
+pub mod metrics;
 pub mod outcomes_api;
 pub mod registry;
 pub mod review_api;
@@ -123,15 +125,37 @@ pub async fn run(
     run_with_loader(settings, bundle_loader(), listener, shutdown).await
 }
 
-/// [`run`] with a chosen bundle reader.
+/// [`run`] with a chosen bundle reader; the metrics endpoint, when
+/// `metrics.listen` is set, is bound here.
 pub async fn run_with_loader(
     settings: Settings,
     loader: Loader,
     listener: TcpListener,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> Result<(), StartError> {
+    let metrics_listener = metrics::bind(&settings.metrics).await?;
+    run_with_listeners(settings, loader, listener, metrics_listener, shutdown).await
+}
+
+/// [`run_with_loader`] on listeners bound by the caller: gRPC on
+/// `listener`, metrics on `metrics_listener` when given (whatever
+/// `metrics.listen` says), so a test can bind port 0 and know the port.
+pub async fn run_with_listeners(
+    settings: Settings,
+    loader: Loader,
+    listener: TcpListener,
+    metrics_listener: Option<TcpListener>,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> Result<(), StartError> {
     settings.check()?;
-    let (writer, ids) = AuditWriter::start(&audit_options(&settings))?;
+    // Collected always (it is cheap), served only on a metrics listener.
+    let metrics = Arc::new(metrics::Metrics::new());
+    let loader = metrics.counting_loader(loader);
+    let (writer, ids) = AuditWriter::start_observed(
+        &audit_options(&settings),
+        Some(metrics.clone() as Arc<dyn audit::writer::CommitObserver>),
+    )?;
+    metrics.watch_audit(writer.clone());
     let dir = settings.models.dir.clone();
     let default = settings.models.default.clone();
     let opened = tokio::task::spawn_blocking(move || Registry::open(&dir, &default, loader))
@@ -160,22 +184,29 @@ pub async fn run_with_loader(
             return Err(e.into());
         }
     };
-    let engine = Arc::new(Engine::new(
-        registry.clone(),
-        writer.clone(),
-        ids,
-        engine_options(&settings),
-    ));
+    metrics.watch_models(registry.clone());
+    let engine = Arc::new(
+        Engine::new(
+            registry.clone(),
+            writer.clone(),
+            ids,
+            engine_options(&settings),
+        )
+        .with_metrics(metrics.clone()),
+    );
 
     let (health, health_service) = tonic_health::server::health_reporter();
     report_health(&health, !registry.snapshot().is_empty()).await;
     let (stop_tx, stop_rx) = watch::channel(false);
-    let background = spawn_background(
+    let mut background = spawn_background(
         registry.clone(),
         Duration::from_millis(settings.models.reload_poll_ms),
         health.clone(),
-        stop_rx,
+        stop_rx.clone(),
     )?;
+    if let Some(l) = metrics_listener {
+        background.push(tokio::spawn(metrics::serve(l, metrics.clone(), stop_rx)));
+    }
 
     let reflection_v1 = tonic_reflection::server::Builder::configure()
         .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
@@ -197,7 +228,7 @@ pub async fn run_with_loader(
         &settings.audit.path,
         settings.audit.synchronous,
     ) {
-        Ok(api) => api,
+        Ok(api) => api.with_metrics(metrics.clone()),
         Err(e) => {
             let _ = writer.close().await;
             return Err(e.into());
@@ -224,6 +255,7 @@ pub async fn run_with_loader(
     tracing::info!(listen = ?local, models = ?registry.snapshot().ids(), "serving");
     let server = Server::builder()
         .timeout(Duration::from_millis(settings.server.request_timeout_ms))
+        .layer(metrics::CallLayer::new(metrics.clone()))
         .layer(tower::util::MapRequestLayer::new(move |req| {
             limits::limit_request(req, limit)
         }))

@@ -11,6 +11,7 @@ use std::sync::{Arc, Mutex};
 use rusqlite::Connection;
 use tonic::{Code, Request, Response, Status};
 
+use super::metrics::Metrics;
 use super::registry::Registry;
 use crate::audit::outcomes::{self, OutcomeInput, RowResult, Target};
 use crate::monitor::{self, Interval};
@@ -55,6 +56,7 @@ fn to_status(e: &Error) -> Status {
 pub struct OutcomesApi {
     registry: Arc<Registry>,
     conn: Arc<Mutex<Connection>>,
+    metrics: Option<Arc<Metrics>>,
 }
 
 impl OutcomesApi {
@@ -69,7 +71,15 @@ impl OutcomesApi {
         Ok(OutcomesApi {
             registry,
             conn: Arc::new(Mutex::new(conn)),
+            metrics: None,
         })
+    }
+
+    /// Sets alarm and realised-coverage gauges in `metrics` from every
+    /// default evaluation (see [`super::metrics`]).
+    pub fn with_metrics(mut self, metrics: Arc<Metrics>) -> OutcomesApi {
+        self.metrics = Some(metrics);
+        self
     }
 
     async fn with_conn<T: Send + 'static>(
@@ -151,6 +161,13 @@ impl OutcomesApi {
         req: pb::CalibrationRequest,
     ) -> Result<pb::CalibrationResponse, Error> {
         let model = self.registry.snapshot().get(&req.model)?;
+        // Only the default evaluation moves the gauges: one consistent series
+        // for alerting, whatever windows callers ask about.
+        let is_default = req.level == 0.0
+            && req.alpha == 0.0
+            && req.outside_window == 0
+            && req.from_unix_us == 0
+            && req.to_unix_us == 0;
         let level = default_in(req.level, DEFAULT_LEVEL, "level", 0.5, 0.999)?;
         let alpha = default_in(req.alpha, DEFAULT_ALPHA, "alpha", 1e-9, 0.5)?;
         let window = if req.outside_window == 0 {
@@ -203,6 +220,13 @@ impl OutcomesApi {
                 expected,
             });
         let alarms = monitor::alarms(&cal, claim, window, alpha);
+        if let Some(m) = self.metrics.as_ref().filter(|_| is_default) {
+            m.record_evaluation(
+                model.id(),
+                alarms.iter().map(|a| (a.kind.name(), a.firing)),
+                cal.overall.coverage.as_ref().map(|c| c.rate.estimate),
+            );
+        }
         Ok(pb::CalibrationResponse {
             model: model.id().to_string(),
             model_version: model.info().version.clone(),

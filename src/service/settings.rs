@@ -31,6 +31,7 @@
 //! | `audit.batch_max` | 64 | most requests committed in one transaction |
 //! | `audit.queue_depth` | 1,024 | requests waiting for the audit writer before callers wait |
 //! | `audit.checkpoint_interval_ms` | 30,000 | how often the WAL is checkpointed (PASSIVE) |
+//! | `metrics.listen` | empty | address of the Prometheus endpoint (`GET /metrics`, plain HTTP), e.g. `0.0.0.0:9464`; empty = off |
 
 use std::collections::HashMap;
 use std::net::SocketAddr;
@@ -69,6 +70,7 @@ pub struct Settings {
     pub models: ModelSettings,
     pub policy: PolicySettings,
     pub audit: AuditSettings,
+    pub metrics: MetricsSettings,
 }
 
 #[derive(Clone, Debug, PartialEq, Deserialize)]
@@ -184,6 +186,29 @@ impl Default for AuditSettings {
     }
 }
 
+/// The Prometheus endpoint. A string rather than an address so that empty
+/// (the default, also `PLUMBLINE_METRICS__LISTEN=`) can mean off.
+#[derive(Clone, Debug, Default, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct MetricsSettings {
+    pub listen: String,
+}
+
+impl MetricsSettings {
+    /// The address to serve metrics on; None when the endpoint is off.
+    pub fn listen_addr(&self) -> Result<Option<SocketAddr>, Error> {
+        let text = self.listen.trim();
+        if text.is_empty() {
+            return Ok(None);
+        }
+        text.parse().map(Some).map_err(|e| Error::Invalid {
+            key: "metrics.listen",
+            value: self.listen.clone(),
+            why: format!("{e}; give an IP address and port such as 0.0.0.0:9464, or leave it empty to turn metrics off"),
+        })
+    }
+}
+
 /// The most candidates one request may be allowed: record ids number the
 /// candidates with six digits so they sort as text.
 pub const MAX_CANDIDATES_CEILING: usize = 999_999;
@@ -292,6 +317,7 @@ impl Settings {
             "audit.checkpoint_interval_ms",
             self.audit.checkpoint_interval_ms as usize,
         )?;
+        self.metrics.listen_addr()?;
         Ok(())
     }
 }
@@ -431,6 +457,12 @@ mod tests {
                 "100",
                 "server.max_message_bytes",
             ),
+            ("PLUMBLINE_METRICS__LISTEN", "localhost", "metrics.listen"),
+            (
+                "PLUMBLINE_METRICS__LISTEN",
+                "0.0.0.0:99999",
+                "metrics.listen",
+            ),
         ];
         for (var, value, key) in cases {
             let err = Settings::load(None, &env(&[(var, value)]), &[])
@@ -438,6 +470,32 @@ mod tests {
                 .to_string();
             assert!(err.contains(key), "{var}={value}: {err}");
         }
+    }
+
+    #[test]
+    fn metrics_are_off_unless_an_address_is_set() {
+        let s = Settings::load(None, &HashMap::new(), &[]).unwrap();
+        assert_eq!(s.metrics.listen_addr().unwrap(), None);
+        let e = env(&[("PLUMBLINE_METRICS__LISTEN", "")]);
+        let s = Settings::load(None, &e, &[]).unwrap();
+        assert_eq!(s.metrics.listen_addr().unwrap(), None);
+        let mut f = tempfile::NamedTempFile::new().unwrap();
+        writeln!(f, "[metrics]\nlisten = \"0.0.0.0:9464\"").unwrap();
+        let s = Settings::load(Some(f.path()), &HashMap::new(), &[]).unwrap();
+        assert_eq!(
+            s.metrics.listen_addr().unwrap(),
+            Some(SocketAddr::from(([0, 0, 0, 0], 9464)))
+        );
+        let s = Settings::load(
+            Some(f.path()),
+            &HashMap::new(),
+            &[("metrics.listen", "127.0.0.1:9100".into())],
+        )
+        .unwrap();
+        assert_eq!(s.metrics.listen_addr().unwrap().unwrap().port(), 9100);
+        let e = env(&[("PLUMBLINE_METRICS__PATH", "/m")]);
+        let err = Settings::load(None, &e, &[]).unwrap_err().to_string();
+        assert!(err.contains("path"), "{err}");
     }
 
     #[test]

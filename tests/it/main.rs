@@ -7,6 +7,7 @@ mod analysts_cli;
 mod audit_trail;
 mod cli_client;
 mod fixtures;
+mod metrics;
 mod ops;
 mod outcomes;
 mod python;

@@ -21,6 +21,19 @@ fn status(r: &pb::OutcomeRowResult) -> pb::OutcomeRowStatus {
     pb::OutcomeRowStatus::try_from(r.status).expect("a known row status")
 }
 
+/// The truth has shifted: every value 3 interval widths above the upper
+/// bound, so no interval covers and the error is far above the claim.
+/// `scored` must all carry both bounds.
+pub fn shifted_truth(scored: &[&pb::ScoredCandidate]) -> Vec<pb::OutcomeRow> {
+    scored
+        .iter()
+        .map(|c| {
+            let (lo, hi) = (c.lower.expect("lower"), c.upper.expect("upper"));
+            by_record(&c.record_id, hi + 3.0 * (hi - lo).abs().max(0.1))
+        })
+        .collect()
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn outcomes_are_recorded_row_by_row_and_a_shifted_truth_fires_the_alarms() {
     let server = TestServer::start(
@@ -82,15 +95,7 @@ async fn outcomes_are_recorded_row_by_row_and_a_shifted_truth_fires_the_alarms()
         pb::OutcomeRowStatus::OutcomeUnknownRecord
     );
 
-    // The truth has shifted: every value 3 interval half-widths above the
-    // prediction, so no interval covers and the error is far above the claim.
-    let shifted: Vec<pb::OutcomeRow> = scored
-        .iter()
-        .map(|c| {
-            let (lo, hi) = (c.lower.expect("lower"), c.upper.expect("upper"));
-            by_record(&c.record_id, hi + 3.0 * (hi - lo).abs().max(0.1))
-        })
-        .collect();
+    let shifted = shifted_truth(&scored);
     let again = outcomes
         .record_outcomes(pb::RecordOutcomesRequest {
             rows: shifted.clone(),

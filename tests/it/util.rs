@@ -14,6 +14,9 @@ use tonic::transport::Channel;
 
 pub struct TestServer {
     pub addr: SocketAddr,
+    /// Where the metrics endpoint listens, when `metrics.listen` was set
+    /// (port 0 there becomes the OS-chosen port here).
+    pub metrics_addr: Option<SocketAddr>,
     pub dir: tempfile::TempDir,
     pub bundles: PathBuf,
     pub audit_path: PathBuf,
@@ -49,17 +52,30 @@ impl TestServer {
             .await
             .expect("bind loopback");
         let addr = listener.local_addr().expect("local address");
+        let metrics_listener = match settings.metrics.listen_addr().expect("metrics address") {
+            Some(a) => Some(
+                tokio::net::TcpListener::bind(a)
+                    .await
+                    .expect("bind metrics"),
+            ),
+            None => None,
+        };
+        let metrics_addr = metrics_listener
+            .as_ref()
+            .map(|l| l.local_addr().expect("metrics address"));
         let (stop, stopped) = oneshot::channel::<()>();
-        let task = tokio::spawn(service::run_with_loader(
+        let task = tokio::spawn(service::run_with_listeners(
             settings.clone(),
             loader,
             listener,
+            metrics_listener,
             async move {
                 let _ = stopped.await;
             },
         ));
         TestServer {
             addr,
+            metrics_addr,
             bundles: settings.models.dir.clone(),
             audit_path: settings.audit.path.clone(),
             settings,
