@@ -12,6 +12,7 @@ use tokio_stream::StreamExt;
 
 use crate::pb;
 use crate::pb::review_client::ReviewClient;
+use crate::service::client::AuthedChannel;
 
 #[derive(Debug, Args)]
 pub struct CasesArgs {
@@ -27,6 +28,8 @@ pub struct Common {
     /// Machine-readable output.
     #[arg(long)]
     pub json: bool,
+    #[command(flatten)]
+    pub access: super::ConnectArgs,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
@@ -237,7 +240,14 @@ fn write_summaries(out: &mut dyn Write, cases: &[pb::CaseSummary]) -> std::io::R
     writeln!(
         out,
         "{:<24} {:<14} {:<12} {:<8} {:<8} {:>10} {:>10} {:<8} {:<18}",
-        "record", "candidate", "model", "status", "verdict", "prediction", "typicality", "state",
+        "record",
+        "candidate",
+        "model",
+        "status",
+        "verdict",
+        "prediction",
+        "typicality",
+        "state",
         "decision"
     )?;
     for c in cases {
@@ -282,11 +292,10 @@ fn csv_field(s: &str) -> String {
     }
 }
 
-async fn connect(endpoint: &str) -> anyhow::Result<ReviewClient<tonic::transport::Channel>> {
-    Ok(ReviewClient::connect(endpoint.to_string())
-        .await
-        .with_context(|| format!("connecting to {endpoint}; is `plumbline serve` running there?"))?
-        .max_decoding_message_size(64 << 20))
+async fn connect(common: &Common) -> anyhow::Result<ReviewClient<AuthedChannel>> {
+    let channel =
+        crate::service::client::connect(&common.endpoint, &common.access.connect()).await?;
+    Ok(ReviewClient::new(channel).max_decoding_message_size(64 << 20))
 }
 
 fn failed(call: &str, s: tonic::Status) -> anyhow::Error {
@@ -302,7 +311,7 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
             page_size,
             page_token,
         } => {
-            let mut client = connect(&common.endpoint).await?;
+            let mut client = connect(common).await?;
             let page = client
                 .list_cases(pb::ListCasesRequest {
                     filter: Some(filter_to_pb(filter)),
@@ -330,7 +339,7 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
             common,
             neighbours,
         } => {
-            let mut client = connect(&common.endpoint).await?;
+            let mut client = connect(common).await?;
             let d = client
                 .get_case(pb::GetCaseRequest {
                     record_id: record_id.clone(),
@@ -348,7 +357,7 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
             decision,
             note,
         } => {
-            let mut client = connect(&common.endpoint).await?;
+            let mut client = connect(common).await?;
             let r = client
                 .settle_case(pb::SettleCaseRequest {
                     record_id: record_id.clone(),
@@ -376,7 +385,7 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
             groups,
             seed,
         } => {
-            let mut client = connect(&common.endpoint).await?;
+            let mut client = connect(common).await?;
             let r = client
                 .group_cases(pb::GroupCasesRequest {
                     model: model.clone(),
@@ -417,7 +426,11 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
                     r.groups.len(),
                     r.skipped
                 )?;
-                writeln!(out, "{:>5} {:>6} {:>16}  members", "group", "size", "centre distance")?;
+                writeln!(
+                    out,
+                    "{:>5} {:>6} {:>16}  members",
+                    "group", "size", "centre distance"
+                )?;
                 for g in &r.groups {
                     writeln!(
                         out,
@@ -435,7 +448,7 @@ pub async fn run_to(args: &CasesArgs, out: &mut dyn Write) -> anyhow::Result<()>
             filter,
             out: file,
         } => {
-            let mut client = connect(&common.endpoint).await?;
+            let mut client = connect(common).await?;
             let mut stream = client
                 .export_cases(pb::ExportCasesRequest {
                     filter: Some(filter_to_pb(filter)),
@@ -541,7 +554,11 @@ fn show(out: &mut dyn Write, d: &pb::CaseDetail, as_json: bool) -> anyhow::Resul
             d.confidence,
             opt(s.lower),
             opt(s.upper),
-            if d.calibration.is_empty() { "none" } else { &d.calibration }
+            if d.calibration.is_empty() {
+                "none"
+            } else {
+                &d.calibration
+            }
         )?;
     }
     writeln!(out, "descriptors:")?;
@@ -561,7 +578,11 @@ fn show(out: &mut dyn Write, d: &pb::CaseDetail, as_json: bool) -> anyhow::Resul
             r.leverage_warning,
             r.pca_residual,
             r.pca_residual_limit,
-            if r.beyond_z_threshold { " beyond the Z threshold" } else { "" }
+            if r.beyond_z_threshold {
+                " beyond the Z threshold"
+            } else {
+                ""
+            }
         )?;
         for o in &r.out_of_range {
             writeln!(
@@ -581,7 +602,11 @@ fn show(out: &mut dyn Write, d: &pb::CaseDetail, as_json: bool) -> anyhow::Resul
             d.neighbours_model_version
         )?;
     }
-    writeln!(out, "{:<16} {:>6} {:>12} {:>12}", "nearest training", "row", "distance", "observed")?;
+    writeln!(
+        out,
+        "{:<16} {:>6} {:>12} {:>12}",
+        "nearest training", "row", "distance", "observed"
+    )?;
     for n in &d.neighbours {
         writeln!(
             out,

@@ -13,9 +13,12 @@
 //! - [`review_api`]: the analysts' review queue over the audit store;
 //! - [`status`]: the one mapping from errors to gRPC statuses;
 //! - [`limits`]: the message-size limit that names its setting;
+//! - [`access`]: bearer tokens, roles and the loopback rule for open servers;
+//! - [`tls`]: TLS files, server and client TLS, client-certificate subjects;
 //! - [`client`]: the `plumbline score` client;
 //! - [`telemetry`]: tracing setup.
 
+pub mod access;
 pub mod batch;
 pub mod client;
 pub mod convert;
@@ -29,6 +32,7 @@ pub mod scoring_api;
 pub mod settings;
 pub mod status;
 pub mod telemetry;
+pub mod tls;
 
 use std::future::Future;
 use std::sync::Arc;
@@ -37,6 +41,7 @@ use std::time::Duration;
 use tokio::net::TcpListener;
 use tokio::sync::watch;
 use tonic::server::NamedService;
+use tonic::service::interceptor::InterceptedService;
 use tonic::transport::Server;
 use tonic::transport::server::TcpIncoming;
 use tonic_health::ServingStatus;
@@ -49,6 +54,7 @@ pub use settings::Settings;
 
 use crate::audit::{self, AuditWriter};
 use crate::pb;
+use access::Role;
 use batch::KeepDescriptors;
 use engine::{Engine, EngineOptions};
 use scoring_api::ScoringApi;
@@ -131,6 +137,7 @@ pub async fn run_with_loader(
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> Result<(), StartError> {
     settings.check()?;
+    let (rules, builder) = secured(&settings, &listener)?;
     let (writer, ids) = AuditWriter::start(&audit_options(&settings))?;
     let dir = settings.models.dir.clone();
     let default = settings.models.default.clone();
@@ -192,6 +199,8 @@ pub async fn run_with_loader(
     let scoring = pb::scoring_server::ScoringServer::new(ScoringApi::new(engine.clone()))
         .max_decoding_message_size(limit)
         .max_encoding_message_size(limit);
+    let gate = |role| access::Gate::new(rules.clone(), role);
+    let scoring = InterceptedService::new(scoring, gate(Role::Score));
     let outcomes_api = match outcomes_api::OutcomesApi::open(
         registry.clone(),
         &settings.audit.path,
@@ -209,6 +218,8 @@ pub async fn run_with_loader(
     let review = pb::review_server::ReviewServer::new(review_api)
         .max_decoding_message_size(limit)
         .max_encoding_message_size(limit);
+    let outcomes = InterceptedService::new(outcomes, gate(Role::Review));
+    let review = InterceptedService::new(review, gate(Role::Review));
     let local = listener.local_addr().ok();
     let incoming = TcpIncoming::from(listener).with_nodelay(Some(true));
 
@@ -222,7 +233,7 @@ pub async fn run_with_loader(
         let _ = fired_tx.send(());
     };
     tracing::info!(listen = ?local, models = ?registry.snapshot().ids(), "serving");
-    let server = Server::builder()
+    let server = builder
         .timeout(Duration::from_millis(settings.server.request_timeout_ms))
         .layer(tower::util::MapRequestLayer::new(move |req| {
             limits::limit_request(req, limit)
@@ -262,6 +273,46 @@ pub async fn run_with_loader(
         Err(e) => tracing::error!(error = %e, "audit store did not close cleanly"),
     }
     served
+}
+
+/// The access rules and a server builder with TLS when configured; refuses
+/// an open server on a non-loopback address and warns about an open one.
+fn secured(
+    settings: &Settings,
+    listener: &TcpListener,
+) -> Result<(Arc<access::Access>, Server), StartError> {
+    let rules = access::Access::from_settings(settings)?;
+    if let Ok(addr) = listener.local_addr() {
+        access::check_exposure(
+            addr,
+            settings.auth_configured(),
+            settings.server.allow_unauthenticated_remote,
+        )?;
+    }
+    if rules.is_open() {
+        tracing::warn!(
+            "no authentication configured (no tokens, no client CA): the service is open to \
+             anyone who can reach it; see the security section of the README"
+        );
+    }
+    let mut builder = Server::builder();
+    if let Some(config) = tls::server_config(&settings.tls)? {
+        builder = builder
+            .tls_config(config)
+            .map_err(|e| StartError::Tls(error_chain(&e)))?;
+    }
+    Ok((Arc::new(rules), builder))
+}
+
+fn error_chain(e: &dyn std::error::Error) -> String {
+    let mut text = e.to_string();
+    let mut source = e.source();
+    while let Some(s) = source {
+        text.push_str(": ");
+        text.push_str(&s.to_string());
+        source = s.source();
+    }
+    text
 }
 
 fn audit_options(s: &Settings) -> audit::Options {

@@ -3,6 +3,7 @@
 //! official grpcio packages), checked against in-process scoring of the same
 //! bundles and against the audit database.
 
+mod access;
 mod audit_trail;
 mod cli_client;
 mod fixtures;
