@@ -12,6 +12,7 @@ use tokio_stream::StreamExt;
 
 use crate::pb;
 use crate::pb::review_client::ReviewClient;
+use crate::service::client::AuthedChannel;
 
 #[derive(Debug, Args)]
 pub struct CasesArgs {
@@ -27,6 +28,8 @@ pub struct Common {
     /// Machine-readable output.
     #[arg(long)]
     pub json: bool,
+    #[command(flatten)]
+    pub access: super::ConnectArgs,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
@@ -289,19 +292,13 @@ fn csv_field(s: &str) -> String {
     }
 }
 
-/// A channel to the service named by the common flags.
-pub async fn connect_channel(common: &Common) -> anyhow::Result<tonic::transport::Channel> {
-    let endpoint = &common.endpoint;
-    tonic::transport::Endpoint::from_shared(endpoint.clone())
-        .with_context(|| {
-            format!("'{endpoint}' is not a service address; give e.g. http://127.0.0.1:7420")
-        })?
-        .connect()
-        .await
-        .with_context(|| format!("connecting to {endpoint}; is `plumbline serve` running there?"))
+/// A channel to the service named by the common flags, with their TLS and
+/// token.
+pub async fn connect_channel(common: &Common) -> anyhow::Result<AuthedChannel> {
+    crate::service::client::connect(&common.endpoint, &common.access.connect()).await
 }
 
-async fn connect(common: &Common) -> anyhow::Result<ReviewClient<tonic::transport::Channel>> {
+async fn connect(common: &Common) -> anyhow::Result<ReviewClient<AuthedChannel>> {
     Ok(ReviewClient::new(connect_channel(common).await?).max_decoding_message_size(64 << 20))
 }
 

@@ -13,6 +13,7 @@ pub mod evaluate;
 pub mod fit;
 pub mod outcomes;
 pub mod predict;
+pub mod token;
 
 #[derive(Debug, Parser)]
 #[command(
@@ -48,6 +49,11 @@ pub enum Command {
     Cases(cases::CasesArgs),
     /// Record lab results and report a model's realised calibration and alarms.
     Outcomes(outcomes::OutcomesArgs),
+    /// Make bearer tokens for `auth.tokens_file` (only their hashes are stored).
+    Token {
+        #[command(subcommand)]
+        command: TokenCommand,
+    },
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
@@ -238,6 +244,53 @@ pub struct ScoreArgs {
     /// Column holding the candidate ids.
     #[arg(long, default_value = "id")]
     pub id: String,
+    #[command(flatten)]
+    pub access: ConnectArgs,
+}
+
+/// How the clients reach a secured server.
+#[derive(Debug, Args, Clone, Default)]
+pub struct ConnectArgs {
+    /// Bearer token for servers that require one (see `plumbline token new`).
+    #[arg(long, env = "PLUMBLINE_TOKEN", hide_env_values = true)]
+    pub token: Option<String>,
+    /// CA certificate (PEM) that signed the server's certificate; use with an https:// endpoint.
+    #[arg(long)]
+    pub ca_cert: Option<PathBuf>,
+    /// Client certificate (PEM) for servers with mutual TLS.
+    #[arg(long, requires = "client_key")]
+    pub client_cert: Option<PathBuf>,
+    /// The client certificate's private key (PEM).
+    #[arg(long, requires = "client_cert")]
+    pub client_key: Option<PathBuf>,
+    /// Name the server's certificate must carry (default: the endpoint's host).
+    #[arg(long)]
+    pub server_name: Option<String>,
+}
+
+impl ConnectArgs {
+    pub fn connect(&self) -> crate::service::client::Connect {
+        crate::service::client::Connect {
+            token: self.token.clone(),
+            ca_cert: self.ca_cert.clone(),
+            client_cert: self.client_cert.clone(),
+            client_key: self.client_key.clone(),
+            server_name: self.server_name.clone(),
+        }
+    }
+}
+
+#[derive(Debug, Subcommand)]
+pub enum TokenCommand {
+    /// Print a fresh random token once, and the line that configures it.
+    New {
+        /// Who holds the token; written into every audit record of its calls.
+        #[arg(long)]
+        name: String,
+        /// What it may do: score, review or admin (admin may do everything).
+        #[arg(long, value_parser = ["score", "review", "admin"])]
+        role: String,
+    },
 }
 
 #[derive(Debug, Args)]
@@ -273,6 +326,7 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Demo(args) => demo::run(&args),
         Command::Cases(args) => cases::run(&args),
         Command::Outcomes(args) => outcomes::run(&args),
+        Command::Token { command } => token::run(&command, &mut std::io::stdout().lock()),
     }
 }
 
@@ -300,8 +354,9 @@ fn score(args: &ScoreArgs) -> anyhow::Result<()> {
     let runtime = tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()?;
-    runtime.block_on(crate::service::client::score_client(
+    runtime.block_on(crate::service::client::score_client_with(
         &args.endpoint,
+        &args.access.connect(),
         &args.data,
         &args.out,
         &args.model,

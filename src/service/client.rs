@@ -4,16 +4,104 @@
 //! rows over ScoreStream in chunks and writes one CSV row per candidate with
 //! `id,prediction,lower,upper,verdict,typicality,rank,status,record_id`.
 //! The rank is over the whole file (the stream's overall ranking).
+//!
+//! [`Connect`] and [`connect`] are shared by every client of this crate: TLS
+//! with a chosen CA (and a client certificate for mutual TLS) and a bearer
+//! token sent with every call.
 
 use std::collections::HashMap;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use anyhow::{Context, anyhow, bail};
 use tokio::sync::mpsc;
 use tokio_stream::wrappers::ReceiverStream;
 
+use tonic::metadata::{AsciiMetadataValue, MetadataValue};
+use tonic::service::Interceptor;
+use tonic::service::interceptor::InterceptedService;
+use tonic::transport::{Channel, Endpoint};
+
 use crate::pb;
 use crate::pb::scoring_client::ScoringClient;
+
+/// How a client reaches a server that may ask for TLS and a token.
+#[derive(Clone, Debug, Default)]
+pub struct Connect {
+    /// Bearer token sent as `authorization: Bearer <token>`.
+    pub token: Option<String>,
+    /// CA that signed the server's certificate; given, the client speaks TLS.
+    pub ca_cert: Option<PathBuf>,
+    /// The client's certificate and key, for servers with mutual TLS.
+    pub client_cert: Option<PathBuf>,
+    pub client_key: Option<PathBuf>,
+    /// The name the server's certificate must carry (default: the
+    /// endpoint's host).
+    pub server_name: Option<String>,
+}
+
+/// A channel whose every call carries the token.
+pub type AuthedChannel = InterceptedService<Channel, AttachToken>;
+
+/// Adds the bearer token, if any, to every call.
+#[derive(Clone, Debug)]
+pub struct AttachToken(Option<AsciiMetadataValue>);
+
+impl Interceptor for AttachToken {
+    fn call(&mut self, mut req: tonic::Request<()>) -> Result<tonic::Request<()>, tonic::Status> {
+        if let Some(v) = &self.0 {
+            req.metadata_mut().insert("authorization", v.clone());
+        }
+        Ok(req)
+    }
+}
+
+/// Connects to `endpoint` (`http://` or, with TLS, `https://`) as `how`
+/// says.
+pub async fn connect(endpoint: &str, how: &Connect) -> anyhow::Result<AuthedChannel> {
+    let token = match &how.token {
+        Some(t) => Some(
+            MetadataValue::try_from(format!("Bearer {}", t.trim()))
+                .map_err(|_| anyhow!("the token holds characters a header cannot carry"))?,
+        ),
+        None => None,
+    };
+    let mut ep = Endpoint::from_shared(endpoint.to_string())
+        .with_context(|| format!("'{endpoint}' is not an endpoint address"))?;
+    let tls = super::tls::client_config(&super::tls::ClientTls {
+        ca_cert: how.ca_cert.as_deref(),
+        client_cert: how.client_cert.as_deref(),
+        client_key: how.client_key.as_deref(),
+    })?;
+    if let Some(mut tls) = tls {
+        if let Some(name) = &how.server_name {
+            tls = tls.domain_name(name.clone());
+        }
+        ep = ep
+            .tls_config(tls)
+            .with_context(|| format!("setting up TLS to {endpoint}"))?;
+    } else if endpoint.starts_with("https://") {
+        bail!("{endpoint}: https needs --ca-cert, the CA that signed the server's certificate");
+    }
+    let channel = ep.connect().await.map_err(|e| {
+        anyhow!(
+            "connecting to {endpoint}: {}; is `plumbline serve` running there, and do TLS \
+             (--ca-cert) and the server's settings agree?",
+            chain(&e)
+        )
+    })?;
+    Ok(InterceptedService::new(channel, AttachToken(token)))
+}
+
+fn chain(e: &dyn std::error::Error) -> String {
+    let mut text = e.to_string();
+    let mut source = e.source();
+    while let Some(s) = source {
+        text.push_str(": ");
+        text.push_str(&s.to_string());
+        source = s.source();
+    }
+    text
+}
 
 /// Candidates per stream message.
 const CHUNK: usize = 1000;
@@ -29,9 +117,29 @@ pub async fn score_client(
     confidence: Option<f64>,
     id_column: &str,
 ) -> anyhow::Result<()> {
-    let mut client = ScoringClient::connect(endpoint.to_string())
-        .await
-        .with_context(|| format!("connecting to {endpoint}"))?
+    score_client_with(
+        endpoint,
+        &Connect::default(),
+        data_csv,
+        out_csv,
+        model,
+        confidence,
+        id_column,
+    )
+    .await
+}
+
+/// [`score_client`] through a connection made as `how` says (TLS, token).
+pub async fn score_client_with(
+    endpoint: &str,
+    how: &Connect,
+    data_csv: &Path,
+    out_csv: &Path,
+    model: &str,
+    confidence: Option<f64>,
+    id_column: &str,
+) -> anyhow::Result<()> {
+    let mut client = ScoringClient::new(connect(endpoint, how).await?)
         .max_decoding_message_size(64 << 20)
         .max_encoding_message_size(64 << 20);
     let card = client
@@ -39,7 +147,7 @@ pub async fn score_client(
             model: model.to_string(),
         })
         .await
-        .map_err(|s| anyhow!("DescribeModel failed: {}", s.message()))?
+        .map_err(|s| anyhow!("DescribeModel failed ({:?}): {}", s.code(), s.message()))?
         .into_inner();
 
     let mut reader = csv::Reader::from_path(data_csv)

@@ -97,6 +97,11 @@ pub enum StartError {
         #[source]
         source: std::io::Error,
     },
+    #[error(
+        "TLS could not be set up from `tls.cert`, `tls.key` and `tls.client_ca`: {0}; check \
+         that the key belongs to the certificate"
+    )]
+    Tls(String),
     #[error("models directory {0}: no default model could be determined")]
     NoDefault(PathBuf),
 }

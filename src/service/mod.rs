@@ -14,9 +14,12 @@
 //! - [`status`]: the one mapping from errors to gRPC statuses;
 //! - [`limits`]: the message-size limit that names its setting;
 //! - [`metrics`]: Prometheus metrics and their HTTP endpoint;
+//! - [`access`]: bearer tokens, roles and the loopback rule for open servers;
+//! - [`tls`]: TLS files, server and client TLS, client-certificate subjects;
 //! - [`client`]: the `plumbline score` client;
 //! - [`telemetry`]: tracing setup.
 
+pub mod access;
 pub mod batch;
 pub mod client;
 pub mod convert;
@@ -31,6 +34,7 @@ pub mod scoring_api;
 pub mod settings;
 pub mod status;
 pub mod telemetry;
+pub mod tls;
 
 use std::future::Future;
 use std::sync::Arc;
@@ -39,6 +43,7 @@ use std::time::Duration;
 use tokio::net::TcpListener;
 use tokio::sync::watch;
 use tonic::server::NamedService;
+use tonic::service::interceptor::InterceptedService;
 use tonic::transport::Server;
 use tonic::transport::server::TcpIncoming;
 use tonic_health::ServingStatus;
@@ -51,6 +56,7 @@ pub use settings::Settings;
 
 use crate::audit::{self, AuditWriter};
 use crate::pb;
+use access::Role;
 use batch::KeepDescriptors;
 use engine::{Engine, EngineOptions};
 use scoring_api::ScoringApi;
@@ -148,6 +154,7 @@ pub async fn run_with_listeners(
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> Result<(), StartError> {
     settings.check()?;
+    let (rules, builder) = secured(&settings, &listener)?;
     // Collected always (it is cheap), served only on a metrics listener.
     let metrics = Arc::new(metrics::Metrics::new());
     let loader = metrics.counting_loader(loader);
@@ -223,6 +230,8 @@ pub async fn run_with_listeners(
     let scoring = pb::scoring_server::ScoringServer::new(ScoringApi::new(engine.clone()))
         .max_decoding_message_size(limit)
         .max_encoding_message_size(limit);
+    let gate = |role| access::Gate::new(rules.clone(), role);
+    let scoring = InterceptedService::new(scoring, gate(Role::Score));
     let outcomes_api = match outcomes_api::OutcomesApi::open(
         registry.clone(),
         &settings.audit.path,
@@ -240,6 +249,8 @@ pub async fn run_with_listeners(
     let review = pb::review_server::ReviewServer::new(review_api)
         .max_decoding_message_size(limit)
         .max_encoding_message_size(limit);
+    let outcomes = InterceptedService::new(outcomes, gate(Role::Review));
+    let review = InterceptedService::new(review, gate(Role::Review));
     let local = listener.local_addr().ok();
     let incoming = TcpIncoming::from(listener).with_nodelay(Some(true));
 
@@ -253,7 +264,7 @@ pub async fn run_with_listeners(
         let _ = fired_tx.send(());
     };
     tracing::info!(listen = ?local, models = ?registry.snapshot().ids(), "serving");
-    let server = Server::builder()
+    let server = builder
         .timeout(Duration::from_millis(settings.server.request_timeout_ms))
         .layer(metrics::CallLayer::new(metrics.clone()))
         .layer(tower::util::MapRequestLayer::new(move |req| {
@@ -294,6 +305,46 @@ pub async fn run_with_listeners(
         Err(e) => tracing::error!(error = %e, "audit store did not close cleanly"),
     }
     served
+}
+
+/// The access rules and a server builder with TLS when configured; refuses
+/// an open server on a non-loopback address and warns about an open one.
+fn secured(
+    settings: &Settings,
+    listener: &TcpListener,
+) -> Result<(Arc<access::Access>, Server), StartError> {
+    let rules = access::Access::from_settings(settings)?;
+    if let Ok(addr) = listener.local_addr() {
+        access::check_exposure(
+            addr,
+            settings.auth_configured(),
+            settings.server.allow_unauthenticated_remote,
+        )?;
+    }
+    if rules.is_open() {
+        tracing::warn!(
+            "no authentication configured (no tokens, no client CA): the service is open to \
+             anyone who can reach it; see the security section of the README"
+        );
+    }
+    let mut builder = Server::builder();
+    if let Some(config) = tls::server_config(&settings.tls)? {
+        builder = builder
+            .tls_config(config)
+            .map_err(|e| StartError::Tls(error_chain(&e)))?;
+    }
+    Ok((Arc::new(rules), builder))
+}
+
+fn error_chain(e: &dyn std::error::Error) -> String {
+    let mut text = e.to_string();
+    let mut source = e.source();
+    while let Some(s) = source {
+        text.push_str(": ");
+        text.push_str(&s.to_string());
+        source = s.source();
+    }
+    text
 }
 
 fn audit_options(s: &Settings) -> audit::Options {

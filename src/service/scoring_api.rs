@@ -27,7 +27,7 @@ impl ScoringApi {
 fn caller<T>(req: &Request<T>) -> Caller {
     Caller {
         peer: req.remote_addr().map(|a| a.to_string()),
-        identity: None,
+        identity: super::access::identity_of(req),
     }
 }
 

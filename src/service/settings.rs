@@ -18,6 +18,12 @@
 //! | `server.concurrency_limit` | 256 | calls processed at once; more wait |
 //! | `server.shutdown_grace_ms` | 10,000 | how long shutdown waits for in-flight calls |
 //! | `server.json_logs` | false | JSON log lines (for containers) |
+//! | `server.allow_unauthenticated_remote` | false | with no tokens and no client CA, allow listening on a non-loopback address (anyone who reaches it may call) |
+//! | `tls.cert` | none | server certificate chain (PEM); with `tls.key`, the server speaks TLS only |
+//! | `tls.key` | none | the server certificate's private key (PEM, PKCS#8, PKCS#1 or SEC1) |
+//! | `tls.client_ca` | none | CA certificates (PEM) for client certificates: when set, every client must present one it signed (mutual TLS) and the certificate subject is the caller's identity |
+//! | `auth.tokens_file` | none | file of bearer tokens, one `NAME ROLE SHA256-HEX` a line (`#` comments); see `plumbline token new` |
+//! | `auth.tokens` | empty | the same inline: `[[auth.tokens]]` tables with `name`, `role`, `sha256` |
 //! | `models.dir` | `bundles` | directory of `*.plumb` bundles |
 //! | `models.default` | empty | default model id; empty: the only model, or the first id in sort order |
 //! | `models.reload_poll_ms` | 2,000 | how often the directory is checked for changes; 0 = only on SIGHUP |
@@ -39,6 +45,7 @@ use std::path::{Path, PathBuf};
 
 use serde::Deserialize;
 
+pub use super::access::Role;
 pub use crate::audit::Synchronous;
 use crate::scoring::{OutsidePolicy, Policy, RankKey};
 
@@ -60,6 +67,12 @@ pub enum Error {
         value: String,
         why: String,
     },
+    #[error("setting `{key}`: file {path}: {why}")]
+    File {
+        key: &'static str,
+        path: PathBuf,
+        why: String,
+    },
 }
 
 /// All settings of `plumbline serve`.
@@ -71,6 +84,42 @@ pub struct Settings {
     pub policy: PolicySettings,
     pub audit: AuditSettings,
     pub metrics: MetricsSettings,
+    pub tls: TlsSettings,
+    pub auth: AuthSettings,
+}
+
+/// TLS for the server; all paths are PEM files read at start-up.
+#[derive(Clone, Debug, Default, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct TlsSettings {
+    pub cert: Option<PathBuf>,
+    pub key: Option<PathBuf>,
+    /// When set, clients must present a certificate this CA signed.
+    pub client_ca: Option<PathBuf>,
+}
+
+impl TlsSettings {
+    pub fn enabled(&self) -> bool {
+        self.cert.is_some()
+    }
+}
+
+/// Bearer tokens, kept only as SHA-256 hashes.
+#[derive(Clone, Debug, Default, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct AuthSettings {
+    pub tokens_file: Option<PathBuf>,
+    pub tokens: Vec<TokenSetting>,
+}
+
+/// One token as configured: who holds it, what it may do, and the SHA-256
+/// (hex) of the token itself.
+#[derive(Clone, Debug, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TokenSetting {
+    pub name: String,
+    pub role: Role,
+    pub sha256: String,
 }
 
 #[derive(Clone, Debug, PartialEq, Deserialize)]
@@ -84,6 +133,7 @@ pub struct ServerSettings {
     pub concurrency_limit: usize,
     pub shutdown_grace_ms: u64,
     pub json_logs: bool,
+    pub allow_unauthenticated_remote: bool,
 }
 
 impl Default for ServerSettings {
@@ -99,6 +149,7 @@ impl Default for ServerSettings {
             concurrency_limit: 256,
             shutdown_grace_ms: 10_000,
             json_logs: false,
+            allow_unauthenticated_remote: false,
         }
     }
 }
@@ -318,7 +369,56 @@ impl Settings {
             self.audit.checkpoint_interval_ms as usize,
         )?;
         self.metrics.listen_addr()?;
-        Ok(())
+        self.check_access()
+    }
+
+    /// The TLS paths come in the right combinations, and an open server is
+    /// reachable only from this host unless that is asked for.
+    fn check_access(&self) -> Result<(), Error> {
+        let t = &self.tls;
+        let shown = |p: &Option<PathBuf>| {
+            p.as_ref()
+                .map(|p| p.display().to_string())
+                .unwrap_or_default()
+        };
+        if t.cert.is_some() != t.key.is_some() {
+            return Err(Error::Invalid {
+                key: if t.cert.is_some() {
+                    "tls.key"
+                } else {
+                    "tls.cert"
+                },
+                value: String::from("(not set)"),
+                why: "`tls.cert` and `tls.key` are set together or not at all".into(),
+            });
+        }
+        if t.client_ca.is_some() && t.cert.is_none() {
+            return Err(Error::Invalid {
+                key: "tls.client_ca",
+                value: shown(&t.client_ca),
+                why: "client certificates need TLS: set `tls.cert` and `tls.key` too".into(),
+            });
+        }
+        for (i, token) in self.auth.tokens.iter().enumerate() {
+            super::access::check_token_setting(token).map_err(|why| Error::Invalid {
+                key: "auth.tokens",
+                value: format!("entry {} ('{}')", i + 1, token.name),
+                why,
+            })?;
+        }
+        super::access::check_exposure(
+            self.server.listen,
+            self.auth_configured(),
+            self.server.allow_unauthenticated_remote,
+        )
+    }
+
+    /// Whether callers must prove who they are (tokens or client
+    /// certificates); TLS alone encrypts but lets anyone in.
+    pub fn auth_configured(&self) -> bool {
+        self.tls.client_ca.is_some()
+            || self.auth.tokens_file.is_some()
+            || !self.auth.tokens.is_empty()
     }
 }
 

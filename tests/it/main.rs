@@ -4,6 +4,7 @@
 //! bundles and against the audit database.
 
 mod analysts_cli;
+mod access;
 mod audit_trail;
 mod cli_client;
 mod fixtures;
