@@ -4,6 +4,7 @@
 //! bundles and against the audit database.
 
 mod audit_trail;
+mod bad_input;
 mod cli_client;
 mod fixtures;
 mod ops;
