@@ -17,7 +17,8 @@ use crate::util::TestServer;
 use crate::{candidates, request, status_of};
 
 const MAX_CANDIDATES: usize = 40;
-const MAX_MESSAGE_BYTES: usize = 32 * 1024;
+// The smallest limit the settings accept.
+const MAX_MESSAGE_BYTES: usize = 64 * 1024;
 
 async fn server() -> TestServer {
     TestServer::start(
@@ -101,18 +102,26 @@ fn corpus() -> Vec<(&'static str, pb::ScoreRequest, Expect)> {
     ));
     // Huge but finite values are far outside the domain: refused (the
     // default policy), never scored or ranked, and never a failed call.
-    for (label, value) in [
-        ("huge", 1e300),
-        ("f64::MAX", f64::MAX),
-        ("-f64::MAX", -f64::MAX),
-    ] {
+    v.push((
+        "huge",
+        request(
+            "",
+            vec![one("x", with(g.clone(), 2, 1e300)), one("ok", g.clone())],
+        ),
+        PerCandidate(vec![(0, Out, "outside the applicability domain"), (1, Scored, "")]),
+    ));
+    // So huge that standardising overflows: rejected like NaN.
+    for (label, value) in [("f64::MAX", f64::MAX), ("-f64::MAX", -f64::MAX)] {
         v.push((
             label,
             request(
                 "",
                 vec![one("x", with(g.clone(), 2, value)), one("ok", g.clone())],
             ),
-            PerCandidate(vec![(0, Out, ""), (1, Scored, "")]),
+            PerCandidate(vec![
+                (0, Rejected, "descriptor 'd2' (position 2)"),
+                (1, Scored, ""),
+            ]),
         ));
     }
     v.push((
@@ -191,9 +200,9 @@ fn corpus() -> Vec<(&'static str, pb::ScoreRequest, Expect)> {
         request("", candidates("c", &rows)),
         Refused(Code::ResourceExhausted, "server.max_candidates"),
     ));
-    // 30 candidates of 200 values each encode to about 48 kB > 32 KiB.
-    let wide: Vec<pb::Candidate> = (0..30)
-        .map(|i| one(&format!("w{i}"), vec![0.25; 200]))
+    // 40 candidates of 300 values each encode to about 96 kB > 64 KiB.
+    let wide: Vec<pb::Candidate> = (0..40)
+        .map(|i| one(&format!("w{i}"), vec![0.25; 300]))
         .collect();
     v.push((
         "message over the size limit",
