@@ -68,7 +68,12 @@ pub fn check_scorable(
                  standardise; check the units of this descriptor or drop the row",
                 i + 1,
                 table.ids.get(i).map(String::as_str).unwrap_or("?"),
-                model.info.descriptor_names.get(j).map(String::as_str).unwrap_or("?"),
+                model
+                    .info
+                    .descriptor_names
+                    .get(j)
+                    .map(String::as_str)
+                    .unwrap_or("?"),
                 row[j]
             );
         }

@@ -275,7 +275,12 @@ fn reorder(values: &[f64], plan: &Plan, p: usize) -> Option<Vec<f64>> {
 /// standardised form overflows. The reason names the descriptor as sent.
 fn too_far(model: &dyn Scorer, canonical: &[f64], plan: &Plan) -> Option<String> {
     let j = model.unscorable_column(canonical)?;
-    let sent = plan.order.as_ref().and_then(|o| o.get(j)).copied().unwrap_or(j);
+    let sent = plan
+        .order
+        .as_ref()
+        .and_then(|o| o.get(j))
+        .copied()
+        .unwrap_or(j);
     let name = plan.names_sent.get(sent).map(String::as_str);
     let name = name.or_else(|| model.info().descriptor_names.get(j).map(String::as_str));
     Some(format!(

@@ -108,7 +108,10 @@ fn corpus() -> Vec<(&'static str, pb::ScoreRequest, Expect)> {
             "",
             vec![one("x", with(g.clone(), 2, 1e300)), one("ok", g.clone())],
         ),
-        PerCandidate(vec![(0, Out, "outside the applicability domain"), (1, Scored, "")]),
+        PerCandidate(vec![
+            (0, Out, "outside the applicability domain"),
+            (1, Scored, ""),
+        ]),
     ));
     // So huge that standardising overflows: rejected like NaN.
     for (label, value) in [("f64::MAX", f64::MAX), ("-f64::MAX", -f64::MAX)] {
