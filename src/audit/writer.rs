@@ -15,7 +15,7 @@ use std::time::Instant;
 use rusqlite::Connection;
 use tokio::sync::{mpsc, oneshot};
 
-use super::sqlite::{max_request_id, open_for_writing, write_entries};
+use super::sqlite::{cap_size, max_request_id, open_for_writing, write_entries};
 use super::{Entry, Error, Options, RequestIds};
 
 /// Where the writer sends a commit's outcome.
@@ -47,6 +47,7 @@ impl AuditWriter {
     /// request-id generator, started after the largest id in the store.
     pub fn start(options: &Options) -> Result<(AuditWriter, RequestIds), Error> {
         let conn = open_for_writing(&options.path, options.synchronous)?;
+        cap_size(&conn, options.max_bytes)?;
         let ids = RequestIds::starting_after(max_request_id(&conn)?);
         let (tx, rx) = mpsc::channel(options.queue_depth.max(1));
         let loop_options = options.clone();
@@ -233,6 +234,7 @@ mod tests {
             batch_max,
             queue_depth: 16,
             checkpoint_interval: Duration::from_millis(1),
+            max_bytes: 0,
         }
     }
 

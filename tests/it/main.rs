@@ -3,9 +3,12 @@
 //! official grpcio packages), checked against in-process scoring of the same
 //! bundles and against the audit database.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 mod audit_trail;
 mod bad_input;
 mod cli_client;
+mod faults;
 mod fixtures;
 mod ops;
 mod outcomes;
