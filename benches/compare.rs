@@ -17,6 +17,8 @@
 //! - dense f64 GEMM on both cores (faer), square and in the shape of one
 //!   kernel block, as the machine's practical limit.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 mod common;
 
 use std::fmt::Write as _;

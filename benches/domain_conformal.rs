@@ -5,6 +5,8 @@
 //! against materialising all n values. Run with
 //! `cargo bench --bench domain_conformal`; figures go to stdout.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use std::hint::black_box;
 use std::time::Instant;
 

@@ -7,6 +7,8 @@
 //! non-linear target of a few of them (Friedman-style), so cluster folds
 //! and random folds disagree the way real series do.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 mod common;
 
 use std::time::Instant;

@@ -13,6 +13,8 @@
 //! settings, e.g. `PLUMBLINE_AUDIT__SYNCHRONOUS=normal`). Every loop is
 //! bounded in both time and count.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use std::io::{BufRead, BufReader, Write};
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};

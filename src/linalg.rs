@@ -33,6 +33,9 @@ fn par_for(flops: usize) -> Par {
 /// A faer view of an array in standard (row-major) layout: the transpose of
 /// a column-major view, so no copy is made.
 fn view<'a>(a: &'a CowArray<'_, f64, Ix2>) -> MatRef<'a, f64> {
+    // Cannot fail: every caller passes `as_standard_layout()`, which is
+    // contiguous and row-major by construction.
+    #[allow(clippy::expect_used)]
     let slice = a.as_slice().expect("standard layout arrays are contiguous");
     MatRef::from_row_major_slice(slice, a.nrows(), a.ncols())
 }
@@ -74,6 +77,8 @@ pub fn matmul_t(a: ArrayView2<f64>, b: ArrayView2<f64>) -> Array2<f64> {
     matmul_faer(view(&a), view(&b).transpose())
 }
 
+// The one `expect` cannot fail: `out` is allocated with m·n elements here.
+#[allow(clippy::expect_used)]
 fn matmul_faer(a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Array2<f64> {
     let (m, k, n) = (a.nrows(), a.ncols(), b.ncols());
     let mut out = vec![0.0f64; m * n];
@@ -103,6 +108,8 @@ const KERNEL_BLOCK_ROWS: usize = 128;
 ///
 /// This is the whole of kernel ridge batch scoring: one kernel row per
 /// query serves every column of `c` (the full model and the fold models).
+// The one `expect` cannot fail: `out` is allocated with rows·m elements here.
+#[allow(clippy::expect_used)]
 pub fn rbf_kernel_times(
     a: ArrayView2<f64>,
     b: ArrayView2<f64>,

@@ -123,8 +123,20 @@ impl ScoringModel {
         self.info.descriptor_names.len()
     }
 
+    /// The first descriptor of `row` (bundle order) whose standardised value
+    /// is not finite: a finite value so far from the training data (e.g.
+    /// `f64::MAX`) that `(x - mean) / scale` overflows. Such a row cannot be
+    /// scored; callers reject it as they reject NaN.
+    pub fn unscorable_column(&self, row: &[f64]) -> Option<usize> {
+        let s = &self.standardizer;
+        row.iter()
+            .zip(s.mean.iter().zip(s.scale.iter()))
+            .position(|(v, (m, sd))| !((v - m) / sd).is_finite())
+    }
+
     /// Scores B candidates given as raw descriptor rows in the bundle's
-    /// order. Every value must be finite: callers reject bad rows first.
+    /// order. Every value must be finite and every row pass
+    /// [`ScoringModel::unscorable_column`]: callers reject bad rows first.
     pub fn score(&self, x_raw: ArrayView2<f64>, confidence: f64) -> Vec<CandidateScore> {
         let mut out = Vec::with_capacity(x_raw.nrows());
         // Chunks bound the memory of the B × n kernel (or distance) block.

@@ -4,6 +4,8 @@
 //! arithmetic from confidences given in per-mille; over many random cases
 //! with ties, empty folds and Mondrian bands.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use ndarray::{Array2, array};
 use plumbline::conformal::{self, Calibration, Coverage, CvPlus, CvPlusState};
 use plumbline::domain::Verdict;

@@ -15,6 +15,8 @@
 //! 1 − 2α − min{2(1 − 1/K)/(n/K + 1), (1 − K/n)/(K + 1)}; that bound is
 //! checked too, on the mean.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use ndarray::{Array1, Array2, Axis};
 use plumbline::conformal::{Calibration, CvPlus};
 use plumbline::domain::Verdict;

@@ -1,6 +1,8 @@
 //! Every bad input the table reader knows gives its own error, naming the
 //! bad value and where it was, and no table; good inputs read as documented.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use std::io::Write;
 
 use plumbline::data::{

@@ -1,6 +1,8 @@
 //! `plumbline demo` from a clean directory: it must end with the summary
 //! and exit 0, and everything it says it wrote must be there.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use std::process::Command;
 
 #[test]

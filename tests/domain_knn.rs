@@ -5,6 +5,8 @@
 //! components) and many duplicate rows (more than a tree bucket of 32
 //! sharing one point).
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use ndarray::{Array2, ArrayView1, Axis, concatenate};
 use plumbline::domain::{DomainGuard, DomainSettings};
 use rand::{Rng, SeedableRng};

@@ -4,6 +4,8 @@
 //! (sklearn PCA, StandardScaler, NearestNeighbors; numpy hat matrix and
 //! quantiles) via `tests/fixtures/space_reference.json`.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use ndarray::{Array1, Array2, Axis, s};
 use plumbline::domain::{self, DomainGuard, DomainSettings};
 use plumbline::space::Standardizer;

@@ -2,6 +2,8 @@
 //! against every signal of many random candidates, out-of-fold calibration,
 //! persistence of the guard and its refusals of bad input.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use ndarray::{Array1, Array2, Axis, array, concatenate};
 use plumbline::domain::{self, DomainGuard, DomainSettings, DomainSignals, Verdict};
 use plumbline::space::Standardizer;

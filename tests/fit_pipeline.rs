@@ -3,6 +3,8 @@
 //! bundle round trip, corruption refusal, and the command line's promise
 //! that a failed fit writes nothing.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::sync::OnceLock;

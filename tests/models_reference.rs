@@ -16,6 +16,8 @@
 //! solves each system by Cholesky, plumbline by one tridiagonal reduction
 //! per kernel); the largest deviation measured is 2e−10, the rounding.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use std::path::PathBuf;
 
 use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis, s};

@@ -4,6 +4,8 @@
 //! lies near them, and the new series' lab results are far below what a
 //! model of the training SAR extrapolates, as the scenario says.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use std::path::{Path, PathBuf};
 
 use ndarray::{Array1, Array2, Axis};

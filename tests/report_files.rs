@@ -3,6 +3,8 @@
 //! script, no external resource), its claims table shows exactly the JSON's
 //! numbers, and text from outside is escaped.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use std::collections::BTreeMap;
 
 use plumbline::domain::Verdict;

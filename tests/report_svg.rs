@@ -4,6 +4,8 @@
 //! linear steps (Heckbert, Graphics Gems 1990, rounding variant), tick
 //! labels, and which grids count as logarithmic.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use plumbline::report::svg::{
     Scale, is_logarithmic, linear_ticks, log_ticks, nice_step, tick_label,
 };

@@ -2,6 +2,8 @@
 //! and group folds never split a cluster or group, at either level of
 //! nested cross-validation.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 use std::collections::HashMap;
 
 use ndarray::{Array1, Array2, ArrayView2};

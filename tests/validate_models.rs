@@ -5,6 +5,8 @@
 //! claim is skill and y-randomisation says so. The same checks with small
 //! reference models are in validate_noise.rs.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 mod validate_support;
 
 use ndarray::{Array1, ArrayView2};

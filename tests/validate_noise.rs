@@ -6,6 +6,8 @@
 //! says so; a random split hides the optimism that cluster folds expose.
 //! The same checks with the real model families are in validate_models.rs.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 mod validate_support;
 
 use std::sync::Mutex;

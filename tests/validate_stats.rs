@@ -2,6 +2,8 @@
 //! scipy / scikit-learn (the stats reference fixture), published worked
 //! examples, and hand-built tables.
 
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 mod validate_support;
 
 use ndarray::{Array1, ArrayView1};

@@ -60,6 +60,16 @@ pub enum Error {
         found: i64,
         known: usize,
     },
+    #[error(
+        "audit database {path} is locked by another process (another `plumbline serve` on the \
+         same file, or a tool holding a write transaction on it): {source}; stop that process, \
+         or point `audit.path` at a file of this server's own"
+    )]
+    Locked {
+        path: PathBuf,
+        #[source]
+        source: rusqlite::Error,
+    },
     #[error("audit commit failed: {message}")]
     Write { message: String },
     #[error("the audit writer is shut down; no new records are accepted")]
@@ -104,6 +114,9 @@ pub struct Options {
     pub queue_depth: usize,
     /// How often the WAL is checkpointed (PASSIVE) while commits happen.
     pub checkpoint_interval: Duration,
+    /// Largest size of the database in bytes, 0 for no cap. Past it commits
+    /// fail as they would on a full disk (SQLite's `max_page_count`).
+    pub max_bytes: u64,
 }
 
 /// Which RPC a request came through.

@@ -90,10 +90,7 @@ pub const MIGRATIONS: &[Migration] = &[
 /// Opens (creating if needed) the database for writing and brings its
 /// schema up to date.
 pub fn open_for_writing(path: &Path, synchronous: Synchronous) -> Result<Connection, Error> {
-    let open_err = |source| Error::Open {
-        path: path.to_path_buf(),
-        source,
-    };
+    let open_err = |source| opening_error(path, source);
     let conn = Connection::open(path).map_err(open_err)?;
     conn.busy_timeout(Duration::from_secs(5))
         .map_err(open_err)?;
@@ -119,8 +116,63 @@ pub fn open_for_writing(path: &Path, synchronous: Synchronous) -> Result<Connect
     // commit appends there.
     conn.pragma_update(None, "cache_size", -65_536)
         .map_err(open_err)?;
-    migrate(&conn, path)?;
+    migrate(&conn, path).map_err(|e| match e {
+        Error::Migrate { source, .. } if is_locked(&source) => Error::Locked {
+            path: path.to_path_buf(),
+            source,
+        },
+        other => other,
+    })?;
+    // A write lock held elsewhere would otherwise only show at the first
+    // commit, as failed calls; taking and releasing it here makes start-up
+    // say so instead (after the busy timeout).
+    conn.execute_batch("BEGIN IMMEDIATE; COMMIT;")
+        .map_err(open_err)?;
     Ok(conn)
+}
+
+/// An open-time failure: [`Error::Locked`] when another connection holds the
+/// lock, [`Error::Open`] otherwise.
+fn opening_error(path: &Path, source: rusqlite::Error) -> Error {
+    if is_locked(&source) {
+        Error::Locked {
+            path: path.to_path_buf(),
+            source,
+        }
+    } else {
+        Error::Open {
+            path: path.to_path_buf(),
+            source,
+        }
+    }
+}
+
+fn is_locked(e: &rusqlite::Error) -> bool {
+    matches!(
+        e.sqlite_error_code(),
+        Some(rusqlite::ErrorCode::DatabaseBusy | rusqlite::ErrorCode::DatabaseLocked)
+    )
+}
+
+/// Caps the database at `max_bytes` (0: no cap) through `max_page_count`,
+/// which holds for this connection only: past it, commits fail with
+/// SQLITE_FULL exactly as on a full disk, and succeed again once pages are
+/// free. The cap never goes below the pages already in use.
+pub fn cap_size(conn: &Connection, max_bytes: u64) -> Result<(), Error> {
+    if max_bytes == 0 {
+        return Ok(());
+    }
+    let read = |source| Error::Read { source };
+    let page_size: i64 = conn
+        .query_row("PRAGMA page_size", [], |r| r.get(0))
+        .map_err(read)?;
+    let pages = (max_bytes / page_size.max(1) as u64).max(1);
+    let pages = i64::try_from(pages).unwrap_or(i64::MAX);
+    conn.query_row(&format!("PRAGMA max_page_count = {pages}"), [], |r| {
+        r.get::<_, i64>(0)
+    })
+    .map_err(read)?;
+    Ok(())
 }
 
 /// Applies the migrations not yet applied, each in its own transaction with

@@ -15,7 +15,7 @@ use std::time::{Duration, Instant};
 use rusqlite::Connection;
 use tokio::sync::{mpsc, oneshot};
 
-use super::sqlite::{max_request_id, open_for_writing, write_entries};
+use super::sqlite::{cap_size, max_request_id, open_for_writing, write_entries};
 use super::{Entry, Error, Options, RequestIds};
 
 /// Where the writer sends a commit's outcome.
@@ -64,6 +64,7 @@ impl AuditWriter {
         observer: Option<Arc<dyn CommitObserver>>,
     ) -> Result<(AuditWriter, RequestIds), Error> {
         let conn = open_for_writing(&options.path, options.synchronous)?;
+        cap_size(&conn, options.max_bytes)?;
         let ids = RequestIds::starting_after(max_request_id(&conn)?);
         let (tx, rx) = mpsc::channel(options.queue_depth.max(1));
         let loop_options = options.clone();
@@ -279,6 +280,7 @@ mod tests {
             batch_max,
             queue_depth: 16,
             checkpoint_interval: Duration::from_millis(1),
+            max_bytes: 0,
         }
     }
 

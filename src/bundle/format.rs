@@ -185,13 +185,13 @@ pub fn decode(bytes: &[u8]) -> Result<Sections, FormatError> {
             1 => Elements::F64(
                 r.take_elems(len, 8, &name)?
                     .chunks_exact(8)
-                    .map(|c| f64::from_le_bytes(c.try_into().expect("chunk of 8")))
+                    .map(|c| f64::from_le_bytes(le_bytes(c)))
                     .collect(),
             ),
             2 => Elements::U32(
                 r.take_elems(len, 4, &name)?
                     .chunks_exact(4)
-                    .map(|c| u32::from_le_bytes(c.try_into().expect("chunk of 4")))
+                    .map(|c| u32::from_le_bytes(le_bytes(c)))
                     .collect(),
             ),
             3 => Elements::U8(r.take_elems(len, 1, &name)?.to_vec()),
@@ -252,20 +252,24 @@ impl<'a> Reader<'a> {
     }
 
     fn u16(&mut self, what: &str) -> Result<u16, FormatError> {
-        Ok(u16::from_le_bytes(
-            self.take(2, what)?.try_into().expect("2 bytes"),
-        ))
+        Ok(u16::from_le_bytes(le_bytes(self.take(2, what)?)))
     }
     fn u32(&mut self, what: &str) -> Result<u32, FormatError> {
-        Ok(u32::from_le_bytes(
-            self.take(4, what)?.try_into().expect("4 bytes"),
-        ))
+        Ok(u32::from_le_bytes(le_bytes(self.take(4, what)?)))
     }
     fn u64(&mut self, what: &str) -> Result<u64, FormatError> {
-        Ok(u64::from_le_bytes(
-            self.take(8, what)?.try_into().expect("8 bytes"),
-        ))
+        Ok(u64::from_le_bytes(le_bytes(self.take(8, what)?)))
     }
+}
+
+/// The first `N` bytes of `b` as an array (zero-padded if shorter): callers
+/// pass slices of exactly `N` bytes (`take(N)`, `chunks_exact(N)`).
+fn le_bytes<const N: usize>(b: &[u8]) -> [u8; N] {
+    let mut out = [0u8; N];
+    for (o, v) in out.iter_mut().zip(b) {
+        *o = *v;
+    }
+    out
 }
 
 #[cfg(test)]

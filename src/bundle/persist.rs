@@ -140,10 +140,11 @@ pub(super) fn to_sections(
         training_ids: training_ids.to_vec(),
         components,
     };
-    Sections {
-        manifest: serde_json::to_vec_pretty(&manifest).expect("manifest serialises"),
-        arrays,
-    }
+    // Cannot fail: the manifest is structs, strings, numbers and maps keyed
+    // by strings, all of which serde_json writes (non-finite floats as null).
+    #[allow(clippy::expect_used)]
+    let manifest = serde_json::to_vec_pretty(&manifest).expect("manifest serialises");
+    Sections { manifest, arrays }
 }
 
 pub(super) fn from_sections(sections: &Sections) -> Result<Bundle, Problem> {

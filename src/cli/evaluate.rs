@@ -52,6 +52,7 @@ pub fn run(args: &EvaluateArgs) -> anyhow::Result<()> {
     let Some(y) = table.y.as_ref() else {
         anyhow::bail!("{} has no target column '{target}'", args.data.display());
     };
+    super::predict::check_scorable(model, &table)?;
     let scores = model.score(table.x.view(), confidence);
     let observed = y.to_vec();
     let evaluation = Evaluation {

@@ -41,6 +41,7 @@ pub fn run(args: &PredictArgs) -> anyhow::Result<()> {
     let table =
         crate::data::read_for_model(&args.data, &args.id, &model.info.descriptor_names, None)
             .with_context(|| format!("reading {}", args.data.display()))?;
+    check_scorable(model, &table)?;
     let scores = model.score(table.x.view(), confidence);
     let rows = scored_rows(model, &table.ids, &scores, &args.policy.policy());
     write_rows(&args.out, &rows)?;
@@ -51,6 +52,32 @@ pub fn run(args: &PredictArgs) -> anyhow::Result<()> {
         rows.len() - ranked,
         args.out.display()
     );
+    Ok(())
+}
+
+/// Refuses a table with a value too far out to standardise (its scaled
+/// value overflows), naming the row and descriptor.
+pub fn check_scorable(
+    model: &crate::scoring::ScoringModel,
+    table: &crate::data::Table,
+) -> anyhow::Result<()> {
+    for (i, row) in table.x.rows().into_iter().enumerate() {
+        if let Some(j) = model.unscorable_column(&row.to_vec()) {
+            anyhow::bail!(
+                "row {} (id '{}'): descriptor '{}' = {:e} is too far from the training data to \
+                 standardise; check the units of this descriptor or drop the row",
+                i + 1,
+                table.ids.get(i).map(String::as_str).unwrap_or("?"),
+                model
+                    .info
+                    .descriptor_names
+                    .get(j)
+                    .map(String::as_str)
+                    .unwrap_or("?"),
+                row[j]
+            );
+        }
+    }
     Ok(())
 }
 

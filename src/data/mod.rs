@@ -375,6 +375,10 @@ fn parse_rows(
             dropped_incomplete: dropped,
         });
     }
+    // Cannot fail: `parse_row` returns one value per descriptor column (a
+    // short line is refused by the CSV reader before), so every kept row
+    // added exactly `descriptors.len()` values.
+    #[allow(clippy::expect_used)]
     let x = Array2::from_shape_vec((kept_ids.len(), descriptors.len()), x)
         .expect("every kept row has one value per descriptor");
     Ok(ParsedRows {

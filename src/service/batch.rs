@@ -153,7 +153,8 @@ pub fn score_batch(
         let canonical = reorder(c.descriptors, plan, p);
         let hashed: &[f64] = canonical.as_deref().unwrap_or(c.descriptors);
         let descriptor_sha256 = descriptor_hash(hashed);
-        let rejection = check_candidate(c, canonical.is_some(), plan, p, seen, first_position + i);
+        let rejection = check_candidate(c, canonical.is_some(), plan, p, seen, first_position + i)
+            .or_else(|| too_far(model, canonical.as_deref()?, plan));
         seen.entry(c.id.to_string()).or_insert(first_position + i);
         let keep_values = keep == KeepDescriptors::All;
         match rejection {
@@ -268,6 +269,26 @@ fn reorder(values: &[f64], plan: &Plan, p: usize) -> Option<Vec<f64>> {
         None => values.to_vec(),
         Some(order) => order.iter().map(|&i| values[i]).collect(),
     })
+}
+
+/// Why a finite row in bundle order still cannot be scored: a value whose
+/// standardised form overflows. The reason names the descriptor as sent.
+fn too_far(model: &dyn Scorer, canonical: &[f64], plan: &Plan) -> Option<String> {
+    let j = model.unscorable_column(canonical)?;
+    let sent = plan
+        .order
+        .as_ref()
+        .and_then(|o| o.get(j))
+        .copied()
+        .unwrap_or(j);
+    let name = plan.names_sent.get(sent).map(String::as_str);
+    let name = name.or_else(|| model.info().descriptor_names.get(j).map(String::as_str));
+    Some(format!(
+        "descriptor '{}' (position {sent}) = {:e} is too far from the training data to \
+         standardise (its scaled value overflows); check the units of this descriptor",
+        name.unwrap_or("?"),
+        canonical[j]
+    ))
 }
 
 /// Why a candidate cannot be scored, if it cannot. The reason speaks of the

@@ -354,6 +354,7 @@ fn audit_options(s: &Settings) -> audit::Options {
         batch_max: s.audit.batch_max,
         queue_depth: s.audit.queue_depth,
         checkpoint_interval: Duration::from_millis(s.audit.checkpoint_interval_ms),
+        max_bytes: s.audit.max_bytes,
     }
 }
 

@@ -23,8 +23,14 @@ use crate::scoring::{CandidateScore, ModelInfo, ScoringModel};
 /// bundle files.
 pub trait Scorer: Send + Sync + 'static {
     fn info(&self) -> &ModelInfo;
-    /// Scores B rows given in the bundle's descriptor order, all finite.
+    /// Scores B rows given in the bundle's descriptor order, all finite and
+    /// none [`Scorer::unscorable_column`].
     fn score(&self, x_raw: ArrayView2<f64>, confidence: f64) -> Vec<CandidateScore>;
+    /// The first descriptor of a finite row (bundle order) the model cannot
+    /// take, if any: see [`ScoringModel::unscorable_column`].
+    fn unscorable_column(&self, _row: &[f64]) -> Option<usize> {
+        None
+    }
     /// The fitted pipeline behind the scorer, when there is one: review
     /// needs its standardisation, PCA and neighbour index.
     fn scoring_model(&self) -> Option<&ScoringModel> {
@@ -38,6 +44,9 @@ impl Scorer for ScoringModel {
     }
     fn score(&self, x_raw: ArrayView2<f64>, confidence: f64) -> Vec<CandidateScore> {
         ScoringModel::score(self, x_raw, confidence)
+    }
+    fn unscorable_column(&self, row: &[f64]) -> Option<usize> {
+        ScoringModel::unscorable_column(self, row)
     }
     fn scoring_model(&self) -> Option<&ScoringModel> {
         Some(self)

@@ -38,6 +38,7 @@
 //! | `audit.queue_depth` | 1,024 | requests waiting for the audit writer before callers wait |
 //! | `audit.checkpoint_interval_ms` | 30,000 | how often the WAL is checkpointed (PASSIVE) |
 //! | `metrics.listen` | empty | address of the Prometheus endpoint (`GET /metrics`, plain HTTP), e.g. `0.0.0.0:9464`; empty = off |
+//! | `audit.max_bytes` | 0 | cap on the audit database's size, 0 = none; past it scoring fails with UNAVAILABLE as on a full disk |
 
 use std::collections::HashMap;
 use std::net::SocketAddr;
@@ -222,6 +223,7 @@ pub struct AuditSettings {
     pub batch_max: usize,
     pub queue_depth: usize,
     pub checkpoint_interval_ms: u64,
+    pub max_bytes: u64,
 }
 
 impl Default for AuditSettings {
@@ -233,6 +235,7 @@ impl Default for AuditSettings {
             batch_max: 64,
             queue_depth: 1024,
             checkpoint_interval_ms: 30_000,
+            max_bytes: 0,
         }
     }
 }

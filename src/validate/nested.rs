@@ -151,6 +151,9 @@ pub struct Validation {
 
 impl Validation {
     /// The chosen family's nested pass.
+    // The `expect` cannot fail: `chosen_family` is picked from `families`
+    // when the validation is built, and neither changes afterwards.
+    #[allow(clippy::expect_used)]
     pub fn chosen(&self) -> &FamilyNested {
         self.families
             .iter()

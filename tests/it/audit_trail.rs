@@ -22,7 +22,7 @@ fn status_name(s: pb::Status) -> CandidateStatus {
 }
 
 /// The stored record says what the answer said.
-fn assert_matches(rec: &CandidateRecord, c: &pb::ScoredCandidate, confidence: f64) {
+pub(crate) fn assert_matches(rec: &CandidateRecord, c: &pb::ScoredCandidate, confidence: f64) {
     assert_eq!(rec.record_id, c.record_id);
     assert_eq!(rec.candidate_id, c.id);
     assert_eq!(rec.status, status_name(status_of(c)));

@@ -3,10 +3,14 @@
 //! official grpcio packages), checked against in-process scoring of the same
 //! bundles and against the audit database.
 
-mod analysts_cli;
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
 mod access;
+mod analysts_cli;
 mod audit_trail;
+mod bad_input;
 mod cli_client;
+mod faults;
 mod fixtures;
 mod metrics;
 mod ops;

@@ -193,3 +193,86 @@ async fn a_broken_new_file_keeps_the_working_model_and_new_and_removed_files_are
     assert_eq!(err.code(), tonic::Code::NotFound);
     server.stop().await.expect("clean stop");
 }
+
+/// Waits until the listing has `n` models, then returns the default's
+/// version. Files are listed together, so once a change written later is
+/// seen, the damaged file written before it has been tried too.
+async fn listed_after(server: &TestServer, n: usize) -> Vec<(String, String)> {
+    let mut client = server.client().await;
+    let mut listed = Vec::new();
+    for _ in 0..400 {
+        listed = client
+            .list_models(plumbline::pb::ListModelsRequest {})
+            .await
+            .expect("list")
+            .into_inner()
+            .models
+            .into_iter()
+            .map(|m| (m.model, m.model_version))
+            .collect::<Vec<_>>();
+        if listed.len() == n {
+            return listed;
+        }
+        tokio::time::sleep(Duration::from_millis(25)).await;
+    }
+    panic!("the listing never reached {n} models: {listed:?}");
+}
+
+/// The real bundle damaged in place, as a copy caught half-way or a bad
+/// disk would leave it: cut to half its length, then full length with one
+/// bit flipped. Each is refused by its checksum and the loaded version keeps
+/// answering with the same predictions.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_bundle_truncated_or_corrupted_in_place_keeps_the_loaded_model() {
+    let server = TestServer::start(
+        fixtures::loader(),
+        |dir| {
+            fixtures::write_bundle(dir, "potency.plumb", &ModelSpec::new("potency", 7));
+        },
+        |_| {},
+    )
+    .await;
+    let client = server.client().await;
+    let rows = fixtures::in_domain_rows(4, 702);
+    let score = |mut client: plumbline::pb::scoring_client::ScoringClient<_>| {
+        let req = request("potency", candidates("c", &rows));
+        async move {
+            let r = client
+                .score(req)
+                .await
+                .expect("the loaded model still answers")
+                .into_inner();
+            let p: Vec<Option<u64>> = r
+                .results
+                .iter()
+                .map(|c| c.prediction.map(f64::to_bits))
+                .collect();
+            (r.model_version, p)
+        }
+    };
+    let before = score(client.clone()).await;
+    assert!(before.1.iter().all(Option::is_some));
+    let path = server.bundles.join("potency.plumb");
+    let good = std::fs::read(&path).expect("read the bundle");
+
+    std::fs::write(&path, &good[..good.len() / 2]).expect("truncate in place");
+    fixtures::write_bundle(
+        &server.bundles,
+        "solubility.plumb",
+        &ModelSpec::new("solubility", 8),
+    );
+    let listed = listed_after(&server, 2).await;
+    assert_eq!(listed[0], ("potency".to_string(), before.0.clone()));
+    assert_eq!(score(client.clone()).await, before, "after truncation");
+
+    let mut flipped = good.clone();
+    let mid = flipped.len() / 2;
+    flipped[mid] ^= 0x10;
+    std::fs::write(&path, &flipped).expect("corrupt in place");
+    std::fs::remove_file(server.bundles.join("solubility.plumb")).expect("remove");
+    let listed = listed_after(&server, 1).await;
+    assert_eq!(listed[0], ("potency".to_string(), before.0.clone()));
+    assert_eq!(score(client.clone()).await, before, "after a flipped bit");
+
+    server.stop().await.expect("clean stop");
+}
