@@ -23,7 +23,8 @@ use tonic_health::pb::health_client::HealthClient;
 use crate::fixtures::{self, ModelSpec};
 use crate::util::TestServer;
 
-const CLIENT_SUBJECT: &str = "CN=lab-robot,O=Screening Unit";
+// As OpenSSL renders it (checked in `client_subject_matches_openssl_rfc2253_rendering`).
+const CLIENT_SUBJECT: &str = "O=Screening Unit,CN=lab-robot";
 
 /// A CA, a server certificate for localhost and 127.0.0.1, a client
 /// certificate, and a second CA that signed nothing we use; PEM files in
