@@ -81,11 +81,21 @@ pub(crate) fn rank_of_union(arrays: &[Shifted<'_>], rank: usize) -> Option<f64> 
     // The rank-th smallest is the (total + 1 − rank)-th largest.
     let from_top = total + 1 - rank;
     if from_top < rank {
-        select(arrays, from_top, taken, |a, t| a.get(a.len() - 1 - t), |x, y| {
-            x.total_cmp(&y).is_gt()
-        })
+        select(
+            arrays,
+            from_top,
+            taken,
+            |a, t| a.get(a.len() - 1 - t),
+            |x, y| x.total_cmp(&y).is_gt(),
+        )
     } else {
-        select(arrays, rank, taken, |a, t| a.get(t), |x, y| x.total_cmp(&y).is_lt())
+        select(
+            arrays,
+            rank,
+            taken,
+            |a, t| a.get(t),
+            |x, y| x.total_cmp(&y).is_lt(),
+        )
     }
 }
 
@@ -238,7 +248,11 @@ mod tests {
             let coarse = case % 2 == 0;
             let residuals: Vec<Vec<f64>> = (0..k)
                 .map(|_| {
-                    let len = if rng.gen_bool(0.15) { 0 } else { rng.gen_range(1..60) };
+                    let len = if rng.gen_bool(0.15) {
+                        0
+                    } else {
+                        rng.gen_range(1..60)
+                    };
                     let mut r: Vec<f64> = (0..len)
                         .map(|_| {
                             let v: f64 = rng.gen_range(0.0..3.0);

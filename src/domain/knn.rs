@@ -202,7 +202,10 @@ impl NeighbourIndex {
         }
     }
 
-    /// Mean Euclidean distance from `point` to its `k` nearest training rows.
+    /// Mean Euclidean distance from `point` to its `k` nearest training
+    /// rows, by the tree: the twin [`NeighbourIndex::scan_mean_distance`]
+    /// is tested against.
+    #[cfg(test)]
     pub fn mean_distance(&self, point: &Point, k: usize) -> f64 {
         mean_of(
             self.nearest(point, k).iter().map(|&(_, d)| d),
@@ -331,8 +334,15 @@ mod tests {
         let train = Array2::from_shape_fn((4, 2), |(i, j)| (i + j) as f64);
         let index = NeighbourIndex::build(train.view()).unwrap();
         let mut best = Vec::new();
-        assert!(index.scan_mean_distance(&[0.0; TREE_DIM], 0, &mut best).is_nan());
+        assert!(
+            index
+                .scan_mean_distance(&[0.0; TREE_DIM], 0, &mut best)
+                .is_nan()
+        );
         // By hand: from the origin, the nearest of (0,1), (1,2), (2,3), (3,4) is at distance 1.
-        assert_eq!(index.scan_mean_distance(&[0.0; TREE_DIM], 1, &mut best), 1.0);
+        assert_eq!(
+            index.scan_mean_distance(&[0.0; TREE_DIM], 1, &mut best),
+            1.0
+        );
     }
 }
