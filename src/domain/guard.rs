@@ -102,7 +102,7 @@ impl DomainGuard {
     }
 
     /// Measures and judges a batch of candidates: one PCA projection (a
-    /// GEMM) for the batch, one neighbour scan per row.
+    /// GEMM) for the batch, one neighbour search per row.
     ///
     /// # Panics
     /// If either array's column count differs from the training
@@ -156,7 +156,7 @@ impl DomainGuard {
         scratch: &mut Vec<f64>,
     ) -> DomainSignals {
         let s = &self.state;
-        let knn_distance = self.index.scan_mean_distance(point, s.settings.k, scratch);
+        let knn_distance = self.index.fast_mean_distance(point, s.settings.k, scratch);
         let measured = Measured {
             knn_distance,
             typicality: typicality(&s.loo_distances, knn_distance),
