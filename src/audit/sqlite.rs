@@ -2,6 +2,7 @@
 //! schema as an ordered list of migrations tracked by `PRAGMA user_version`,
 //! the writes one commit performs, and the read API.
 
+use std::borrow::Cow;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
@@ -266,12 +267,14 @@ pub fn write_entries(tx: &Transaction<'_>, entries: &[&Entry]) -> rusqlite::Resu
         ])?;
         for c in &e.candidates {
             let s = c.signals.as_ref();
+            // Most candidates have neither: their JSON is the constant "[]",
+            // exactly what serde_json writes for an empty list.
             let out_of_range = s
-                .map(|s| serde_json::to_string(&s.out_of_range))
+                .map(|s| json_list(&s.out_of_range))
                 .transpose()
                 .map_err(|e| rusqlite::Error::ToSqlConversionFailure(Box::new(e)))?;
             let notes = s
-                .map(|s| serde_json::to_string(&s.notes))
+                .map(|s| json_list(&s.notes))
                 .transpose()
                 .map_err(|e| rusqlite::Error::ToSqlConversionFailure(Box::new(e)))?;
             let blob = c.descriptors.as_ref().map(|d| f64s_to_le_bytes(d));
@@ -305,6 +308,15 @@ pub fn write_entries(tx: &Transaction<'_>, entries: &[&Entry]) -> rusqlite::Resu
         }
     }
     Ok(())
+}
+
+/// A list as JSON text, without serialising when it is empty.
+fn json_list<T: serde::Serialize>(items: &[T]) -> serde_json::Result<Cow<'static, str>> {
+    if items.is_empty() {
+        Ok(Cow::Borrowed("[]"))
+    } else {
+        serde_json::to_string(items).map(Cow::Owned)
+    }
 }
 
 pub fn f64s_to_le_bytes(values: &[f64]) -> Vec<u8> {

@@ -14,6 +14,9 @@ use super::{DomainSettings, DomainSignals, Error, OutOfRange};
 use crate::space::pca::Pca;
 use crate::validate::Folds;
 
+/// Batches smaller than this are assessed on the calling thread.
+const PARALLEL_ROWS: usize = 16;
+
 /// The limits a guard judges candidates against, all taken from its
 /// training rows.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -99,7 +102,7 @@ impl DomainGuard {
     }
 
     /// Measures and judges a batch of candidates: one PCA projection (a
-    /// GEMM) for the batch, one tree query per row.
+    /// GEMM) for the batch, one neighbour search per row.
     ///
     /// # Panics
     /// If either array's column count differs from the training
@@ -117,22 +120,30 @@ impl DomainGuard {
         assert_eq!(x_raw.ncols(), d, "assess: raw rows have the wrong length");
         assert_eq!(x_std.nrows(), x_raw.nrows(), "assess: row counts differ");
         let (scores, residuals) = self.state.pca.scores_and_residuals(x_std);
-        // Rows are independent tree queries: shared between the cores.
+        let row = |best: &mut Vec<f64>, i: usize| {
+            let finite = x_std
+                .row(i)
+                .iter()
+                .chain(x_raw.row(i))
+                .all(|v| v.is_finite());
+            match knn::pad(scores.row(i)) {
+                Ok(point) if finite => {
+                    self.judge(&point, scores.row(i), residuals[i], x_raw.row(i), best)
+                }
+                _ => rules::unplaceable(),
+            }
+        };
+        // Rows are independent neighbour scans of a few microseconds each:
+        // a batch is shared between the cores, each worker reusing one
+        // scratch buffer; a handful of rows is not worth a thread hand-off.
+        if x_std.nrows() < PARALLEL_ROWS {
+            let mut best = Vec::new();
+            return (0..x_std.nrows()).map(|i| row(&mut best, i)).collect();
+        }
         (0..x_std.nrows())
             .into_par_iter()
-            .map(|i| {
-                let finite = x_std
-                    .row(i)
-                    .iter()
-                    .chain(x_raw.row(i))
-                    .all(|v| v.is_finite());
-                match knn::pad(scores.row(i)) {
-                    Ok(point) if finite => {
-                        self.judge(&point, scores.row(i), residuals[i], x_raw.row(i))
-                    }
-                    _ => rules::unplaceable(),
-                }
-            })
+            .with_min_len(PARALLEL_ROWS / 2)
+            .map_init(Vec::new, row)
             .collect()
     }
 
@@ -142,9 +153,10 @@ impl DomainGuard {
         scores: ArrayView1<f64>,
         residual: f64,
         raw: ArrayView1<f64>,
+        scratch: &mut Vec<f64>,
     ) -> DomainSignals {
         let s = &self.state;
-        let knn_distance = self.index.mean_distance(point, s.settings.k);
+        let knn_distance = self.index.fast_mean_distance(point, s.settings.k, scratch);
         let measured = Measured {
             knn_distance,
             typicality: typicality(&s.loo_distances, knn_distance),

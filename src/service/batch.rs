@@ -4,6 +4,7 @@
 //! descriptor order, score them in ONE call, give each a status by the
 //! policy and rank the ones that are ranked.
 
+use std::borrow::Cow;
 use std::collections::HashMap;
 
 use ndarray::Array2;
@@ -156,9 +157,9 @@ pub fn score_batch(
         let rejection = check_candidate(c, canonical.is_some(), plan, p, seen, first_position + i)
             .or_else(|| too_far(model, canonical.as_deref()?, plan));
         seen.entry(c.id.to_string()).or_insert(first_position + i);
-        let keep_values = keep == KeepDescriptors::All;
         match rejection {
             Some(reason) => {
+                let keep_values = keep == KeepDescriptors::All;
                 outcomes.push(Outcome {
                     id: c.id.to_string(),
                     status: CandidateStatus::Rejected,
@@ -171,8 +172,9 @@ pub fn score_batch(
                 row_of.push(None);
             }
             None => {
-                let values = canonical.unwrap_or_else(|| c.descriptors.to_vec());
-                rows.extend_from_slice(&values);
+                // The values are copied once, into the batch matrix; the
+                // few candidates whose values are kept get them from there.
+                rows.extend_from_slice(hashed);
                 outcomes.push(Outcome {
                     id: c.id.to_string(),
                     status: CandidateStatus::Scored,
@@ -180,19 +182,19 @@ pub fn score_batch(
                     rank: 0,
                     reason: String::new(),
                     descriptor_sha256,
-                    descriptors: Some(values),
+                    descriptors: None,
                 });
                 row_of.push(Some(n_rows));
                 n_rows += 1;
             }
         }
     }
+    let x = Array2::from_shape_vec((n_rows, p), rows).map_err(|e| Error::Internal {
+        what: format!("assembling {n_rows} × {p} descriptor rows: {e}"),
+    })?;
     let scores = if n_rows == 0 {
         Vec::new()
     } else {
-        let x = Array2::from_shape_vec((n_rows, p), rows).map_err(|e| Error::Internal {
-            what: format!("assembling {n_rows} × {p} descriptor rows: {e}"),
-        })?;
         model.score(x.view(), plan.confidence)
     };
     if scores.len() != n_rows {
@@ -206,9 +208,7 @@ pub fn score_batch(
     }
     let mut scores = scores.into_iter();
     for (o, row) in outcomes.iter_mut().zip(&row_of) {
-        if row.is_none() {
-            continue;
-        }
+        let Some(row) = *row else { continue };
         let Some(s) = scores.next() else { break };
         let disposition = policy.disposition(s.domain.verdict);
         o.status = match disposition {
@@ -237,8 +237,8 @@ pub fn score_batch(
                 o.status,
                 CandidateStatus::Flagged | CandidateStatus::Refused
             );
-        if !keep_values {
-            o.descriptors = None;
+        if keep_values {
+            o.descriptors = Some(x.row(row).to_vec());
         }
         o.score = Some(s);
     }
@@ -260,14 +260,15 @@ pub fn score_batch(
     Ok(ScoredBatch { outcomes, counts })
 }
 
-/// The row in the bundle's order, when it has the length the plan expects.
-fn reorder(values: &[f64], plan: &Plan, p: usize) -> Option<Vec<f64>> {
+/// The row in the bundle's order, when it has the length the plan expects;
+/// borrowed when the request already sends that order.
+fn reorder<'a>(values: &'a [f64], plan: &Plan, p: usize) -> Option<Cow<'a, [f64]>> {
     if values.len() != p {
         return None;
     }
     Some(match &plan.order {
-        None => values.to_vec(),
-        Some(order) => order.iter().map(|&i| values[i]).collect(),
+        None => Cow::Borrowed(values),
+        Some(order) => Cow::Owned(order.iter().map(|&i| values[i]).collect()),
     })
 }
 

@@ -124,6 +124,9 @@ pub fn scored_candidate(
     }
 }
 
+/// The audit record of an outcome. Moves the outcome's strings and values
+/// into the record instead of copying them: call it after
+/// [`scored_candidate`], last of all uses of `o`.
 pub fn candidate_record(
     o: &mut Outcome,
     record_id: String,
@@ -137,14 +140,14 @@ pub fn candidate_record(
         record_id,
         request_id: request_id.to_string(),
         position,
-        candidate_id: o.id.clone(),
+        candidate_id: std::mem::take(&mut o.id),
         status: o.status,
         prediction: g.prediction,
         lower: g.lower,
         upper: g.upper,
         confidence,
         calibration: g.calibration,
-        signals: o.score.as_ref().map(|s| SignalsRecord {
+        signals: o.score.as_mut().map(|s| SignalsRecord {
             verdict: s.domain.verdict.name().to_string(),
             knn_distance: s.domain.knn_distance,
             typicality: s.domain.typicality,
@@ -160,11 +163,11 @@ pub fn candidate_record(
                     max,
                 })
                 .collect(),
-            notes: s.domain.notes.clone(),
+            notes: std::mem::take(&mut s.domain.notes),
         }),
         rank: o.rank,
-        reason: o.reason.clone(),
-        descriptor_sha256: o.descriptor_sha256.clone(),
+        reason: std::mem::take(&mut o.reason),
+        descriptor_sha256: std::mem::take(&mut o.descriptor_sha256),
         descriptors: o.descriptors.take(),
     }
 }

@@ -22,6 +22,10 @@ use crate::domain::DomainSignals;
 use crate::pb;
 use crate::scoring::{CandidateScore, Direction, Policy, RankKey, ranks};
 
+/// Requests of at most this many candidates are scored on the async
+/// worker itself rather than on the blocking pool.
+const INLINE_CANDIDATES: usize = 4;
+
 /// Who is calling.
 #[derive(Clone, Debug, Default)]
 pub struct Caller {
@@ -313,11 +317,12 @@ impl Engine {
         keep_ranked: bool,
     ) -> Result<(Prepared, HashMap<String, usize>), Error> {
         let _cpu = self.cpu.acquire().await.map_err(|_| Error::ShuttingDown)?;
+        let candidates_len = candidates.len();
         let policy = self.options.policy;
         let keep = self.options.keep;
         let worker_model = model.clone();
         let worker_plan = plan.clone();
-        let (batch, seen) = tokio::task::spawn_blocking(move || {
+        let work = move || {
             let mut seen = seen;
             let rows: Vec<CandidateIn<'_>> = candidates
                 .iter()
@@ -336,11 +341,19 @@ impl Engine {
                 first_position,
             );
             (batch, seen)
-        })
-        .await
-        .map_err(|e| Error::Internal {
-            what: format!("scoring task failed: {e}"),
-        })?;
+        };
+        // A few candidates take tens of microseconds: scored right here,
+        // since a hand-off to the blocking pool and back costs as much and
+        // adds the scheduler's delays to a single-candidate call's latency.
+        let (batch, seen) = if candidates_len <= INLINE_CANDIDATES {
+            work()
+        } else {
+            tokio::task::spawn_blocking(work)
+                .await
+                .map_err(|e| Error::Internal {
+                    what: format!("scoring task failed: {e}"),
+                })?
+        };
         let mut batch = batch?;
         let confidence = plan.confidence;
         let mut results = Vec::with_capacity(batch.outcomes.len());
