@@ -15,7 +15,10 @@
 
 #![allow(clippy::unwrap_used, clippy::expect_used)]
 
-use std::io::{BufRead, BufReader, Write};
+#[path = "common/server.rs"]
+mod server;
+
+use std::io::{BufRead, BufReader};
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
@@ -36,7 +39,7 @@ const CHILD_ENV: &str = "SERVE_BENCH_CHILD_DIR";
 
 fn main() {
     if let Ok(dir) = std::env::var(CHILD_ENV) {
-        serve_child(Path::new(&dir));
+        server::serve_child(Path::new(&dir), |s| s.models.reload_poll_ms = 0);
         return;
     }
     let work = tempfile::tempdir().expect("temporary directory");
@@ -143,33 +146,6 @@ fn write_bundle(dir: &Path, family: Family) {
         &outcome.training_y,
     )
     .expect("write bundle");
-}
-
-/// The server child: serves `dir/bundles` until its stdin closes.
-fn serve_child(dir: &Path) {
-    // Settings from PLUMBLINE_* variables, e.g. PLUMBLINE_AUDIT__SYNCHRONOUS=normal.
-    let mut settings =
-        plumbline::service::Settings::load_from_process_env(None, &[]).expect("settings");
-    settings.models.dir = dir.join("bundles");
-    settings.audit.path = dir.join("audit.db");
-    settings.models.reload_poll_ms = 0;
-    let rt = plumbline::service::build_runtime(&settings).expect("runtime");
-    rt.block_on(async move {
-        let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
-            .await
-            .expect("bind");
-        let port = listener.local_addr().expect("address").port();
-        println!("PORT {port}");
-        let _ = std::io::stdout().flush();
-        let shutdown = async {
-            use tokio::io::AsyncReadExt;
-            let mut sink = Vec::new();
-            let _ = tokio::io::stdin().read_to_end(&mut sink).await;
-        };
-        plumbline::service::run(settings, listener, shutdown)
-            .await
-            .expect("serve");
-    });
 }
 
 struct Server {

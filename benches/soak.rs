@@ -18,8 +18,10 @@
 #![allow(clippy::unwrap_used, clippy::expect_used)]
 
 mod common;
+#[path = "common/server.rs"]
+mod server;
 
-use std::io::{BufRead, BufReader, Write};
+use std::io::{BufRead, BufReader};
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::sync::Arc;
@@ -52,7 +54,10 @@ fn env_number(key: &str, default: u64) -> u64 {
 
 fn main() {
     if let Ok(dir) = std::env::var(CHILD_ENV) {
-        serve_child(Path::new(&dir));
+        server::serve_child(Path::new(&dir), |s| {
+            s.models.reload_poll_ms = 500;
+            s.server.max_candidates = MAX_CANDIDATES;
+        });
         return;
     }
     let secs = env_number("SOAK_SECS", 180).max(10);
@@ -145,33 +150,6 @@ fn write_atomically(path: &Path, bytes: &[u8]) {
     let tmp = path.with_extension("plumb.tmp");
     std::fs::write(&tmp, bytes).expect("write bundle");
     std::fs::rename(&tmp, path).expect("rename bundle");
-}
-
-/// The server child: serves `dir/bundles` until its stdin closes.
-fn serve_child(dir: &Path) {
-    let mut settings =
-        plumbline::service::Settings::load_from_process_env(None, &[]).expect("settings");
-    settings.models.dir = dir.join("bundles");
-    settings.audit.path = dir.join("audit.db");
-    settings.models.reload_poll_ms = 500;
-    settings.server.max_candidates = MAX_CANDIDATES;
-    let rt = plumbline::service::build_runtime(&settings).expect("runtime");
-    rt.block_on(async move {
-        let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
-            .await
-            .expect("bind");
-        let port = listener.local_addr().expect("address").port();
-        println!("PORT {port}");
-        let _ = std::io::stdout().flush();
-        let shutdown = async {
-            use tokio::io::AsyncReadExt;
-            let mut sink = Vec::new();
-            let _ = tokio::io::stdin().read_to_end(&mut sink).await;
-        };
-        plumbline::service::run(settings, listener, shutdown)
-            .await
-            .expect("serve");
-    });
 }
 
 struct Server {

@@ -385,19 +385,27 @@ impl AuditReader {
     /// Every request, oldest first.
     pub fn requests(&self) -> Result<Vec<RequestRecord>, Error> {
         let sql = format!("SELECT {REQUEST_COLUMNS} FROM requests ORDER BY request_id");
+        self.read_all(&sql, [], raw_request, RawRequest::into_record)
+    }
+
+    /// Every row of `sql`, read raw and then checked into its record.
+    fn read_all<P: rusqlite::Params, R, T>(
+        &self,
+        sql: &str,
+        params: P,
+        raw: fn(&rusqlite::Row<'_>) -> rusqlite::Result<R>,
+        into_record: fn(R) -> Result<T, Error>,
+    ) -> Result<Vec<T>, Error> {
         let mut stmt = self
             .conn
-            .prepare(&sql)
+            .prepare(sql)
             .map_err(|source| Error::Read { source })?;
         let rows = stmt
-            .query_map([], raw_request)
+            .query_map(params, raw)
             .map_err(|source| Error::Read { source })?;
         let mut out = Vec::new();
-        for raw in rows {
-            out.push(
-                raw.map_err(|source| Error::Read { source })?
-                    .into_record()?,
-            );
+        for row in rows {
+            out.push(into_record(row.map_err(|source| Error::Read { source })?)?);
         }
         Ok(out)
     }
@@ -422,21 +430,7 @@ impl AuditReader {
         let sql = format!(
             "SELECT {CANDIDATE_COLUMNS} FROM candidates WHERE request_id = ?1 ORDER BY position"
         );
-        let mut stmt = self
-            .conn
-            .prepare(&sql)
-            .map_err(|source| Error::Read { source })?;
-        let rows = stmt
-            .query_map([request_id], raw_candidate)
-            .map_err(|source| Error::Read { source })?;
-        let mut out = Vec::new();
-        for raw in rows {
-            out.push(
-                raw.map_err(|source| Error::Read { source })?
-                    .into_record()?,
-            );
-        }
-        Ok(out)
+        self.read_all(&sql, [request_id], raw_candidate, RawCandidate::into_record)
     }
 
     /// The overall ranking of a stream, best first.
