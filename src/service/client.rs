@@ -86,21 +86,10 @@ pub async fn connect(endpoint: &str, how: &Connect) -> anyhow::Result<AuthedChan
         anyhow!(
             "connecting to {endpoint}: {}; is `plumbline serve` running there, and do TLS \
              (--ca-cert) and the server's settings agree?",
-            chain(&e)
+            super::error_chain(&e)
         )
     })?;
     Ok(InterceptedService::new(channel, AttachToken(token)))
-}
-
-fn chain(e: &dyn std::error::Error) -> String {
-    let mut text = e.to_string();
-    let mut source = e.source();
-    while let Some(s) = source {
-        text.push_str(": ");
-        text.push_str(&s.to_string());
-        source = s.source();
-    }
-    text
 }
 
 /// Candidates per stream message.

@@ -336,7 +336,8 @@ fn secured(
     Ok((Arc::new(rules), builder))
 }
 
-fn error_chain(e: &dyn std::error::Error) -> String {
+/// An error with every cause after it, for messages people act on.
+pub(crate) fn error_chain(e: &dyn std::error::Error) -> String {
     let mut text = e.to_string();
     let mut source = e.source();
     while let Some(s) = source {
