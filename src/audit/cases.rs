@@ -11,7 +11,7 @@
 use rusqlite::{Connection, OptionalExtension, params};
 
 use super::sqlite::{CANDIDATE_COLUMNS, raw_candidate};
-use super::{CandidateRecord, CandidateStatus, Error};
+use super::{Caller, CandidateRecord, CandidateStatus, Error};
 
 /// The schema step that adds the cases and their history (appended to
 /// [`super::MIGRATIONS`]).
@@ -123,6 +123,9 @@ pub struct Settlement {
     pub analyst: String,
     pub decision: Decision,
     pub note: String,
+    /// Who made the call that recorded it (the analyst name above is what
+    /// they typed; this is what access control proved).
+    pub caller: Caller,
 }
 
 /// A case: the candidate as the service answered it, the request it came
@@ -151,7 +154,8 @@ fn case_select() -> String {
         .collect();
     format!(
         "SELECT {}, r.model_id, r.model_version, r.batch_label, r.time_us, \
-             h.sequence, h.time_us, h.analyst, h.decision, h.note, k.revisions \
+             h.sequence, h.time_us, h.analyst, h.decision, h.note, k.revisions, \
+             h.caller_peer, h.caller_identity \
          FROM candidates c \
          JOIN requests r ON r.request_id = c.request_id \
          LEFT JOIN cases k ON k.record_id = c.record_id \
@@ -174,6 +178,7 @@ struct RawCase {
     decision: Option<String>,
     note: Option<String>,
     revisions: Option<u32>,
+    caller: Caller,
 }
 
 fn raw_case(r: &rusqlite::Row<'_>) -> rusqlite::Result<RawCase> {
@@ -190,6 +195,10 @@ fn raw_case(r: &rusqlite::Row<'_>) -> rusqlite::Result<RawCase> {
         decision: r.get(e + 7)?,
         note: r.get(e + 8)?,
         revisions: r.get(e + 9)?,
+        caller: Caller {
+            peer: r.get(e + 10)?,
+            identity: r.get(e + 11)?,
+        },
     })
 }
 
@@ -207,6 +216,7 @@ impl RawCase {
                     value: d.clone(),
                 })?,
                 note: self.note.unwrap_or_default(),
+                caller: self.caller,
             }),
             _ => None,
         };
@@ -302,7 +312,8 @@ pub fn get(conn: &Connection, record_id: &str) -> Result<Case, CaseError> {
 pub fn history(conn: &Connection, record_id: &str) -> Result<Vec<Settlement>, CaseError> {
     let mut stmt = conn
         .prepare_cached(
-            "SELECT sequence, record_id, time_us, analyst, decision, note FROM case_history \
+            "SELECT sequence, record_id, time_us, analyst, decision, note, caller_peer, \
+             caller_identity FROM case_history \
              WHERE record_id = ?1 ORDER BY sequence",
         )
         .map_err(read_err)?;
@@ -315,12 +326,17 @@ pub fn history(conn: &Connection, record_id: &str) -> Result<Vec<Settlement>, Ca
                 r.get::<_, String>(3)?,
                 r.get::<_, String>(4)?,
                 r.get::<_, String>(5)?,
+                Caller {
+                    peer: r.get(6)?,
+                    identity: r.get(7)?,
+                },
             ))
         })
         .map_err(read_err)?;
     let mut out = Vec::new();
     for row in rows {
-        let (sequence, record_id, time_us, analyst, decision, note) = row.map_err(read_err)?;
+        let (sequence, record_id, time_us, analyst, decision, note, caller) =
+            row.map_err(read_err)?;
         let decision = Decision::parse(&decision).ok_or_else(|| CaseError::CorruptDecision {
             record_id: record_id.clone(),
             value: decision.clone(),
@@ -332,13 +348,14 @@ pub fn history(conn: &Connection, record_id: &str) -> Result<Vec<Settlement>, Ca
             analyst,
             decision,
             note,
+            caller,
         });
     }
     Ok(out)
 }
 
 /// Records a decision: appends it to the history and makes it the case's
-/// latest, in one transaction.
+/// latest, in one transaction. `caller` is who made the call.
 pub fn settle(
     conn: &mut Connection,
     record_id: &str,
@@ -346,6 +363,7 @@ pub fn settle(
     decision: Decision,
     note: &str,
     time_us: i64,
+    caller: &Caller,
 ) -> Result<Settlement, CaseError> {
     if analyst.trim().is_empty() {
         return Err(CaseError::Missing {
@@ -360,9 +378,17 @@ pub fn settle(
     };
     let tx = conn.transaction().map_err(write)?;
     tx.execute(
-        "INSERT INTO case_history (record_id, time_us, analyst, decision, note) \
-         VALUES (?1, ?2, ?3, ?4, ?5)",
-        params![record_id, time_us, analyst, decision.name(), note],
+        "INSERT INTO case_history (record_id, time_us, analyst, decision, note, \
+             caller_peer, caller_identity) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+        params![
+            record_id,
+            time_us,
+            analyst,
+            decision.name(),
+            note,
+            caller.peer,
+            caller.identity
+        ],
     )
     .map_err(write)?;
     let sequence = tx.last_insert_rowid();
@@ -381,5 +407,6 @@ pub fn settle(
         analyst: analyst.to_string(),
         decision,
         note: note.to_string(),
+        caller: caller.clone(),
     })
 }

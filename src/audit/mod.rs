@@ -152,6 +152,15 @@ pub struct Counts {
     pub rejected: u32,
 }
 
+/// Who made a call, as the service saw it: the socket address and, when
+/// access control is configured, the token holder or client certificate
+/// subject. Written beside every request, decision and outcome.
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct Caller {
+    pub peer: Option<String>,
+    pub identity: Option<String>,
+}
+
 /// One answered request (one `Score` call, or one chunk of a stream).
 #[derive(Clone, Debug, PartialEq)]
 pub struct RequestRecord {
@@ -161,7 +170,7 @@ pub struct RequestRecord {
     pub method: Method,
     /// The caller's socket address.
     pub peer: Option<String>,
-    /// The authenticated caller, once authentication exists.
+    /// The authenticated caller; none when access control is off.
     pub identity: Option<String>,
     pub model_id: String,
     pub model_version: String,

@@ -9,8 +9,8 @@
 
 use rusqlite::{Connection, OptionalExtension, params};
 
-use super::Error;
 use super::sqlite::Migration;
+use super::{Caller, Error};
 
 /// The outcomes table, appended to [`super::MIGRATIONS`].
 pub const MIGRATION: Migration = Migration {
@@ -111,6 +111,8 @@ pub struct OutcomeRow {
     pub recorded_us: i64,
     pub source: String,
     pub superseded_us: Option<i64>,
+    /// Who made the call that recorded it.
+    pub caller: Caller,
 }
 
 fn read_err(source: rusqlite::Error) -> Error {
@@ -130,6 +132,7 @@ pub fn record(
     replace: bool,
     source: &str,
     now_us: i64,
+    caller: &Caller,
 ) -> Result<Vec<RowResult>, Error> {
     let tx = conn.transaction().map_err(write_err)?;
     let mut results = Vec::with_capacity(rows.len());
@@ -176,14 +179,14 @@ pub fn record(
                     params![now_us, id],
                 )
                 .map_err(write_err)?;
-                insert(&tx, &record_id, row.observed, now_us, source)?;
+                insert(&tx, &record_id, row.observed, now_us, source, caller)?;
                 RowResult::Replaced {
                     record_id,
                     previous,
                 }
             }
             None => {
-                insert(&tx, &record_id, row.observed, now_us, source)?;
+                insert(&tx, &record_id, row.observed, now_us, source, caller)?;
                 RowResult::Recorded { record_id }
             }
         };
@@ -199,15 +202,26 @@ fn insert(
     observed: f64,
     now_us: i64,
     source: &str,
+    caller: &Caller,
 ) -> Result<(), Error> {
     let (request_id, position) =
         super::ids::parse_record_id(record_id).ok_or_else(|| Error::Write {
             message: format!("record id {record_id} is not of the form <request id>-<position>"),
         })?;
     tx.execute(
-        "INSERT INTO outcomes (record_id, request_id, position, observed, recorded_us, source)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
-        params![record_id, request_id, position, observed, now_us, source],
+        "INSERT INTO outcomes (record_id, request_id, position, observed, recorded_us, source,
+             caller_peer, caller_identity)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
+        params![
+            record_id,
+            request_id,
+            position,
+            observed,
+            now_us,
+            source,
+            caller.peer,
+            caller.identity
+        ],
     )
     .map_err(write_err)?;
     Ok(())
@@ -266,7 +280,8 @@ fn resolve(conn: &Connection, target: &Target) -> Result<Result<String, RowResul
 pub fn history(conn: &Connection, record_id: &str) -> Result<Vec<OutcomeRow>, Error> {
     let mut stmt = conn
         .prepare(
-            "SELECT record_id, observed, recorded_us, source, superseded_us FROM outcomes
+            "SELECT record_id, observed, recorded_us, source, superseded_us, caller_peer,
+                    caller_identity FROM outcomes
              WHERE record_id = ?1 ORDER BY outcome_id",
         )
         .map_err(read_err)?;
@@ -277,6 +292,10 @@ pub fn history(conn: &Connection, record_id: &str) -> Result<Vec<OutcomeRow>, Er
             recorded_us: r.get(2)?,
             source: r.get(3)?,
             superseded_us: r.get(4)?,
+            caller: Caller {
+                peer: r.get(5)?,
+                identity: r.get(6)?,
+            },
         })
     })
     .map_err(read_err)?
@@ -356,6 +375,7 @@ pub fn recent_outside(conn: &Connection, model_id: &str, window: u64) -> Result<
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::audit::Caller;
     use crate::audit::Synchronous;
     use crate::audit::sqlite::{MIGRATIONS, open_for_writing, schema_version};
 
@@ -449,6 +469,7 @@ mod tests {
             false,
             "lab.csv",
             5000,
+            &Caller::default(),
         )
         .unwrap();
         assert_eq!(
@@ -480,6 +501,7 @@ mod tests {
             false,
             "x",
             6000,
+            &Caller::default(),
         )
         .unwrap();
         assert_eq!(
@@ -495,6 +517,10 @@ mod tests {
             true,
             "y",
             7000,
+            &Caller {
+                peer: Some("10.0.0.7:50100".into()),
+                identity: Some("token:ana".into()),
+            },
         )
         .unwrap();
         assert_eq!(
@@ -508,6 +534,10 @@ mod tests {
         assert_eq!(h.len(), 2);
         assert_eq!((h[0].observed, h[0].superseded_us), (1.5, Some(7000)));
         assert_eq!((h[1].observed, h[1].superseded_us), (1.7, None));
+        // Each row keeps the caller of its own call.
+        assert_eq!(h[0].caller, Caller::default());
+        assert_eq!(h[1].caller.identity.as_deref(), Some("token:ana"));
+        assert_eq!(h[1].caller.peer.as_deref(), Some("10.0.0.7:50100"));
 
         let p = pairs(&conn, "m", 0, 2000).unwrap();
         assert_eq!(p.len(), 2);

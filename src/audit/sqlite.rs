@@ -86,6 +86,16 @@ pub const MIGRATIONS: &[Migration] = &[
         name: "review cases and their decision history",
         sql: super::cases::MIGRATION_SQL,
     },
+    Migration {
+        name: "who settled a case or recorded an outcome",
+        // Rows written before this step have no caller: NULL, not a guess.
+        sql: "
+        ALTER TABLE case_history ADD COLUMN caller_peer TEXT;
+        ALTER TABLE case_history ADD COLUMN caller_identity TEXT;
+        ALTER TABLE outcomes ADD COLUMN caller_peer TEXT;
+        ALTER TABLE outcomes ADD COLUMN caller_identity TEXT;
+    ",
+    },
 ];
 
 /// Opens (creating if needed) the database for writing and brings its

@@ -110,7 +110,9 @@ pub enum CasesCommand {
         record_id: String,
         #[command(flatten)]
         common: Common,
-        #[arg(long)]
+        /// Who decides; defaults to the identity of the token or client
+        /// certificate when the server checks one.
+        #[arg(long, default_value = "")]
         analyst: String,
         #[arg(long, value_enum)]
         decision: DecisionArg,
@@ -233,6 +235,8 @@ fn history_json(h: &pb::Settlement) -> Value {
         "analyst": h.analyst,
         "decision": decision_name(h.decision),
         "note": h.note,
+        "caller_identity": h.caller_identity,
+        "caller_peer": h.caller_peer,
     })
 }
 
@@ -273,12 +277,17 @@ fn write_history(out: &mut dyn Write, history: &[pb::Settlement]) -> std::io::Re
     for h in history {
         writeln!(
             out,
-            "  #{:<5} {:>18} {:<12} {:<18} {}",
+            "  #{:<5} {:>18} {:<12} {:<18} {}{}",
             h.sequence,
             h.time_us,
             h.analyst,
             decision_name(h.decision),
-            h.note
+            h.note,
+            if h.caller_identity.is_empty() {
+                String::new()
+            } else {
+                format!("  (by {})", h.caller_identity)
+            }
         )?;
     }
     Ok(())

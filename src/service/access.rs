@@ -77,6 +77,14 @@ pub fn identity_of<T>(req: &Request<T>) -> Option<String> {
         .map(|c| c.0.clone())
 }
 
+/// Who made a call: the peer address and the identity the gate attached.
+pub fn caller_of<T>(req: &Request<T>) -> crate::audit::Caller {
+    crate::audit::Caller {
+        peer: req.remote_addr().map(|a| a.to_string()),
+        identity: identity_of(req),
+    }
+}
+
 /// Why a call was not admitted; becomes UNAUTHENTICATED or
 /// PERMISSION_DENIED.
 #[derive(Clone, Debug, PartialEq, Eq)]

@@ -26,13 +26,7 @@ use crate::scoring::{CandidateScore, Direction, Policy, RankKey, ranks};
 /// worker itself rather than on the blocking pool.
 const INLINE_CANDIDATES: usize = 4;
 
-/// Who is calling.
-#[derive(Clone, Debug, Default)]
-pub struct Caller {
-    pub peer: Option<String>,
-    /// Set once authentication exists.
-    pub identity: Option<String>,
-}
+pub use crate::audit::Caller;
 
 /// The limits and policy a call runs under.
 #[derive(Clone, Debug)]

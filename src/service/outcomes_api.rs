@@ -13,6 +13,7 @@ use tonic::{Code, Request, Response, Status};
 
 use super::metrics::Metrics;
 use super::registry::Registry;
+use crate::audit::Caller;
 use crate::audit::outcomes::{self, OutcomeInput, RowResult, Target};
 use crate::monitor::{self, Interval};
 use crate::pb;
@@ -106,6 +107,7 @@ impl OutcomesApi {
     async fn record(
         &self,
         req: pb::RecordOutcomesRequest,
+        caller: Caller,
     ) -> Result<pb::RecordOutcomesResponse, Error> {
         let mut inputs = Vec::with_capacity(req.rows.len());
         for (row, r) in req.rows.iter().enumerate() {
@@ -130,7 +132,11 @@ impl OutcomesApi {
         let source = req.source.clone();
         let now = now_us();
         let results = self
-            .with_conn(move |c| Ok(outcomes::record(c, &inputs, replace, &source, now)?))
+            .with_conn(move |c| {
+                Ok(outcomes::record(
+                    c, &inputs, replace, &source, now, &caller,
+                )?)
+            })
             .await?;
         let stored = results.iter().filter(|r| r.stored()).count() as u32;
         tracing::info!(rows = results.len(), stored, replace, "outcomes recorded");
@@ -405,7 +411,8 @@ impl Outcomes for OutcomesApi {
         &self,
         request: Request<pb::RecordOutcomesRequest>,
     ) -> Result<Response<pb::RecordOutcomesResponse>, Status> {
-        self.record(request.into_inner())
+        let caller = super::access::caller_of(&request);
+        self.record(request.into_inner(), caller)
             .await
             .map(Response::new)
             .map_err(|e| to_status(&e))

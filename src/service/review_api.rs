@@ -281,6 +281,8 @@ fn settlement_to_pb(s: &Settlement) -> pb::Settlement {
         analyst: s.analyst.clone(),
         decision: decision_to_pb(s.decision) as i32,
         note: s.note.clone(),
+        caller_identity: s.caller.identity.clone().unwrap_or_default(),
+        caller_peer: s.caller.peer.clone().unwrap_or_default(),
     }
 }
 
@@ -523,7 +525,15 @@ impl Review for ReviewApi {
         &self,
         request: Request<pb::SettleCaseRequest>,
     ) -> Result<Response<pb::SettleCaseResponse>, Status> {
-        let req = request.into_inner();
+        let caller = super::access::caller_of(&request);
+        let mut req = request.into_inner();
+        // An authenticated analyst need not type a name: the token or
+        // certificate says who they are.
+        if req.analyst.trim().is_empty()
+            && let Some(id) = &caller.identity
+        {
+            req.analyst = id.clone();
+        }
         let run = async {
             let decision =
                 decision_from_pb(req.decision, "decision")?.ok_or(Error::BadArgument {
@@ -538,7 +548,15 @@ impl Review for ReviewApi {
                 .unwrap_or(0);
             let (case, history) = self
                 .with_db(move |c| {
-                    cases::settle(c, &req.record_id, &req.analyst, decision, &req.note, now)?;
+                    cases::settle(
+                        c,
+                        &req.record_id,
+                        &req.analyst,
+                        decision,
+                        &req.note,
+                        now,
+                        &caller,
+                    )?;
                     Ok((
                         cases::get(c, &req.record_id)?,
                         cases::history(c, &req.record_id)?,

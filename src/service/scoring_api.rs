@@ -9,7 +9,8 @@ use tokio_stream::Stream;
 use tokio_stream::wrappers::ReceiverStream;
 use tonic::{Request, Response, Status, Streaming};
 
-use super::engine::{AsyncSend, Caller, Engine, StreamEnd};
+use super::access::caller_of;
+use super::engine::{AsyncSend, Engine, StreamEnd};
 use super::status::to_status;
 use crate::pb;
 use crate::pb::scoring_server::Scoring;
@@ -21,13 +22,6 @@ pub struct ScoringApi {
 impl ScoringApi {
     pub fn new(engine: Arc<Engine>) -> ScoringApi {
         ScoringApi { engine }
-    }
-}
-
-fn caller<T>(req: &Request<T>) -> Caller {
-    Caller {
-        peer: req.remote_addr().map(|a| a.to_string()),
-        identity: super::access::identity_of(req),
     }
 }
 
@@ -47,7 +41,7 @@ impl Scoring for ScoringApi {
         &self,
         request: Request<pb::ScoreRequest>,
     ) -> Result<Response<pb::ScoreResponse>, Status> {
-        let who = caller(&request);
+        let who = caller_of(&request);
         let answer = self.engine.score(request.into_inner(), &who).await?;
         Ok(Response::new(answer))
     }
@@ -58,7 +52,7 @@ impl Scoring for ScoringApi {
         &self,
         request: Request<Streaming<pb::ScoreRequest>>,
     ) -> Result<Response<Self::ScoreStreamStream>, Status> {
-        let who = caller(&request);
+        let who = caller_of(&request);
         let inbound = request.into_inner();
         // Two answers in flight let scoring the next chunk overlap sending
         // the last one without buffering a long screen in memory.

@@ -318,6 +318,82 @@ async fn tokens_admit_each_service_by_role_and_the_audit_record_names_the_holder
     server.stop().await.expect("clean stop");
 }
 
+/// A scoring token scores one far candidate (a case) and one in-domain one;
+/// the analyst token settles the case with no name typed and records an
+/// outcome: the decision and the outcome rows both name the analyst token,
+/// in the store and in the answers.
+#[tokio::test]
+async fn decisions_and_outcomes_record_the_authenticated_caller() {
+    use plumbline::pb::outcomes_client::OutcomesClient;
+
+    let dir = tempfile::tempdir().expect("temporary directory");
+    let (file, robot, analyst) = tokens_file(dir.path());
+    let server = start(|s| s.auth.tokens_file = Some(file)).await;
+    let ep = server.endpoint();
+
+    let mut rows = fixtures::in_domain_rows(1, 5);
+    rows.extend(fixtures::far_rows(1));
+    let robot_ch = channel(&ep, &with_token(&robot)).await.expect("connect");
+    let answer = ScoringClient::new(robot_ch)
+        .score(crate::request("alpha", crate::candidates("c", &rows)))
+        .await
+        .expect("robot scores")
+        .into_inner();
+    let (scored, case) = (&answer.results[0], &answer.results[1]);
+    assert_eq!(crate::status_of(scored), pb::Status::Scored);
+    assert_ne!(crate::status_of(case), pb::Status::Scored, "{case:?}");
+
+    let ana_ch = channel(&ep, &with_token(&analyst)).await.expect("connect");
+    let settled = ReviewClient::new(ana_ch.clone())
+        .settle_case(pb::SettleCaseRequest {
+            record_id: case.record_id.clone(),
+            analyst: String::new(),
+            decision: pb::Decision::Dismiss as i32,
+            note: "far from the series".into(),
+        })
+        .await
+        .expect("the analyst settles with no name typed")
+        .into_inner();
+    let last = settled.history.last().expect("one decision");
+    assert_eq!(last.caller_identity, "token:ana");
+    assert_eq!(
+        last.analyst, "token:ana",
+        "the name defaults to the identity"
+    );
+    assert!(last.caller_peer.starts_with("127.0.0.1:"), "{last:?}");
+
+    OutcomesClient::new(ana_ch)
+        .record_outcomes(pb::RecordOutcomesRequest {
+            rows: vec![pb::OutcomeRow {
+                target: Some(pb::outcome_row::Target::RecordId(scored.record_id.clone())),
+                observed: 1.5,
+            }],
+            replace: false,
+            source: "plate-1.csv".into(),
+        })
+        .await
+        .expect("the analyst records an outcome");
+
+    let conn = rusqlite::Connection::open(&server.audit_path).expect("open the store");
+    let who = |sql: &str, id: &str| -> (Option<String>, Option<String>) {
+        conn.query_row(sql, [id], |r| Ok((r.get(0)?, r.get(1)?)))
+            .expect("the row is stored")
+    };
+    let (identity, peer) = who(
+        "SELECT caller_identity, caller_peer FROM case_history WHERE record_id = ?1",
+        &case.record_id,
+    );
+    assert_eq!(identity.as_deref(), Some("token:ana"));
+    assert!(peer.is_some_and(|p| p.starts_with("127.0.0.1:")));
+    let (identity, peer) = who(
+        "SELECT caller_identity, caller_peer FROM outcomes WHERE record_id = ?1",
+        &scored.record_id,
+    );
+    assert_eq!(identity.as_deref(), Some("token:ana"));
+    assert!(peer.is_some_and(|p| p.starts_with("127.0.0.1:")));
+    server.stop().await.expect("clean stop");
+}
+
 #[tokio::test]
 async fn admin_token_may_call_every_service() {
     let boss = "plb_admin-token-for-tests";
