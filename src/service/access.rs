@@ -19,10 +19,17 @@
 //! With mutual TLS and no tokens, every certificate the client CA signed
 //! grants every role: the CA is then the whole gate. Configure tokens too
 //! to separate roles.
+//!
+//! Tokens rotate without a restart: [`AccessControl`] re-reads
+//! `auth.tokens_file` when it changes (checked with the bundle directory,
+//! every `models.reload_poll_ms`) and on SIGHUP, and swaps the whole table
+//! at once. A file that no longer parses, or that would leave a server with
+//! tokens configured with none, is refused and the tokens in force stay.
 
 use std::net::SocketAddr;
-use std::path::Path;
-use std::sync::Arc;
+use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex, PoisonError, RwLock};
+use std::time::SystemTime;
 
 use rand::RngCore;
 use serde::Deserialize;
@@ -128,8 +135,20 @@ impl Access {
     /// The tokens of `auth.tokens` and `auth.tokens_file`, and whether
     /// client certificates are required.
     pub fn from_settings(s: &Settings) -> Result<Access, settings::Error> {
+        Access::load(
+            &s.auth.tokens,
+            s.auth.tokens_file.as_deref(),
+            s.tls.client_ca.is_some(),
+        )
+    }
+
+    fn load(
+        inline: &[TokenSetting],
+        file: Option<&Path>,
+        client_certs: bool,
+    ) -> Result<Access, settings::Error> {
         let mut tokens = Vec::new();
-        for t in &s.auth.tokens {
+        for t in inline {
             tokens.push(StoredToken {
                 name: t.name.clone(),
                 role: t.role,
@@ -140,10 +159,10 @@ impl Access {
                 })?,
             });
         }
-        if let Some(path) = &s.auth.tokens_file {
+        if let Some(path) = file {
             let text = std::fs::read_to_string(path).map_err(|e| settings::Error::File {
                 key: "auth.tokens_file",
-                path: path.clone(),
+                path: path.to_path_buf(),
                 why: format!("cannot be read: {e}"),
             })?;
             tokens.extend(parse_tokens_file(&text, path)?);
@@ -169,7 +188,7 @@ impl Access {
         }
         Ok(Access {
             tokens,
-            client_certs: s.tls.client_ca.is_some(),
+            client_certs,
         })
     }
 
@@ -271,28 +290,130 @@ fn digests_equal(a: &[u8; 32], b: &[u8; 32]) -> bool {
     std::hint::black_box(diff) == 0
 }
 
+/// What identifies a version of the tokens file without reading it.
+#[derive(Clone, Debug, PartialEq, Eq)]
+struct FileStamp {
+    len: u64,
+    modified: Option<SystemTime>,
+    inode: u64,
+}
+
+fn stamp(path: &Path) -> Option<FileStamp> {
+    use std::os::unix::fs::MetadataExt;
+    // `metadata` follows symlinks, so a Kubernetes Secret volume (a
+    // symlink swapped to a new directory on update) shows as a new inode.
+    let m = std::fs::metadata(path).ok()?;
+    Some(FileStamp {
+        len: m.len(),
+        modified: m.modified().ok(),
+        inode: m.ino(),
+    })
+}
+
+/// What a reload of the tokens did.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub enum TokensReload {
+    /// No tokens file, or it has not changed.
+    Unchanged,
+    /// The new table is in force.
+    Swapped { tokens: usize },
+}
+
+/// The access rules in force, replaceable while the server runs.
+pub struct AccessControl {
+    current: RwLock<Arc<Access>>,
+    inline: Vec<TokenSetting>,
+    file: Option<PathBuf>,
+    seen: Mutex<Option<FileStamp>>,
+}
+
+impl AccessControl {
+    pub fn from_settings(s: &Settings) -> Result<AccessControl, settings::Error> {
+        let file = s.auth.tokens_file.clone();
+        let seen = file.as_deref().and_then(stamp);
+        Ok(AccessControl {
+            current: RwLock::new(Arc::new(Access::from_settings(s)?)),
+            inline: s.auth.tokens.clone(),
+            file,
+            seen: Mutex::new(seen),
+        })
+    }
+
+    /// The rules for the next call.
+    pub fn current(&self) -> Arc<Access> {
+        self.current
+            .read()
+            .unwrap_or_else(PoisonError::into_inner)
+            .clone()
+    }
+
+    /// Re-reads the tokens file when it changed (always when `force`) and
+    /// swaps the table in; on an error the tokens in force stay.
+    pub fn reload(&self, force: bool) -> Result<TokensReload, settings::Error> {
+        let Some(path) = &self.file else {
+            return Ok(TokensReload::Unchanged);
+        };
+        let mut seen = self.seen.lock().unwrap_or_else(PoisonError::into_inner);
+        let now = stamp(path);
+        if !force && now == *seen {
+            return Ok(TokensReload::Unchanged);
+        }
+        // Remember the failed version too, so a broken file is reported
+        // once rather than at every poll.
+        *seen = now;
+        let old = self.current();
+        let new = Access::load(&self.inline, Some(path), old.client_certs)?;
+        if new.tokens.is_empty() && !old.tokens.is_empty() {
+            return Err(settings::Error::File {
+                key: "auth.tokens_file",
+                path: path.clone(),
+                why: "now holds no tokens; the server would stop checking callers, so the \
+                      tokens in force stay (restart without tokens to open it on purpose)"
+                    .into(),
+            });
+        }
+        let tokens = new.tokens.len();
+        *self.current.write().unwrap_or_else(PoisonError::into_inner) = Arc::new(new);
+        Ok(TokensReload::Swapped { tokens })
+    }
+
+    /// [`AccessControl::reload`] with the outcome logged.
+    pub fn reload_logged(&self, force: bool) {
+        match self.reload(force) {
+            Ok(TokensReload::Swapped { tokens }) => {
+                tracing::info!(tokens, "tokens file reloaded; the new tokens are in force")
+            }
+            Ok(TokensReload::Unchanged) => {}
+            Err(e) => {
+                tracing::error!(error = %e, "tokens file not reloaded; the tokens in force stay")
+            }
+        }
+    }
+}
+
 /// A tonic interceptor admitting calls that hold `needs`.
 #[derive(Clone)]
 pub struct Gate {
-    access: Arc<Access>,
+    control: Arc<AccessControl>,
     needs: Role,
 }
 
 impl Gate {
-    pub fn new(access: Arc<Access>, needs: Role) -> Gate {
-        Gate { access, needs }
+    pub fn new(control: Arc<AccessControl>, needs: Role) -> Gate {
+        Gate { control, needs }
     }
 }
 
 impl Interceptor for Gate {
     fn call(&mut self, mut req: Request<()>) -> Result<Request<()>, Status> {
-        if self.access.is_open() {
+        let access = self.control.current();
+        if access.is_open() {
             return Ok(req);
         }
         let certs = req.peer_certs();
         let first: Option<&[u8]> = certs.as_ref().and_then(|c| c.first()).map(|c| &c[..]);
         let authorization = req.metadata().get("authorization").map(|v| v.as_bytes());
-        let admitted = self.access.admit(self.needs, authorization, first);
+        let admitted = access.admit(self.needs, authorization, first);
         if let Some(identity) = admitted.map_err(Status::from)? {
             req.extensions_mut().insert(identity);
         }

@@ -207,6 +207,7 @@ pub async fn run_with_listeners(
     let (stop_tx, stop_rx) = watch::channel(false);
     let mut background = spawn_background(
         registry.clone(),
+        rules.clone(),
         Duration::from_millis(settings.models.reload_poll_ms),
         health.clone(),
         stop_rx.clone(),
@@ -312,8 +313,8 @@ pub async fn run_with_listeners(
 fn secured(
     settings: &Settings,
     listener: &TcpListener,
-) -> Result<(Arc<access::Access>, Server), StartError> {
-    let rules = access::Access::from_settings(settings)?;
+) -> Result<(Arc<access::AccessControl>, Server), StartError> {
+    let rules = access::AccessControl::from_settings(settings)?;
     if let Ok(addr) = listener.local_addr() {
         access::check_exposure(
             addr,
@@ -321,7 +322,7 @@ fn secured(
             settings.server.allow_unauthenticated_remote,
         )?;
     }
-    if rules.is_open() {
+    if rules.current().is_open() {
         tracing::warn!(
             "no authentication configured (no tokens, no client CA): the service is open to \
              anyone who can reach it; see the security section of the README"
@@ -385,10 +386,11 @@ async fn report_health(health: &HealthReporter, serving: bool) {
     health.set_service_status(SCORING_SERVICE, status).await;
 }
 
-/// The directory poller, the SIGHUP handler and the health follower, all
-/// stopped through `stop`.
+/// The poller (bundle directory and tokens file), the SIGHUP handler and
+/// the health follower, all stopped through `stop`.
 fn spawn_background(
     registry: Arc<Registry>,
+    rules: Arc<access::AccessControl>,
     poll: Duration,
     health: HealthReporter,
     stop: watch::Receiver<bool>,
@@ -402,6 +404,7 @@ fn spawn_background(
 
     if !poll.is_zero() {
         let registry = registry.clone();
+        let rules = rules.clone();
         let mut stop = stop.clone();
         tasks.push(tokio::spawn(async move {
             let mut tick = tokio::time::interval(poll);
@@ -410,7 +413,10 @@ fn spawn_background(
             loop {
                 tokio::select! {
                     _ = stop.changed() => break,
-                    _ = tick.tick() => reload(&registry, false).await,
+                    _ = tick.tick() => {
+                        rules.reload_logged(false);
+                        reload(&registry, false).await;
+                    }
                 }
             }
         }));
@@ -424,7 +430,8 @@ fn spawn_background(
                     _ = stop.changed() => break,
                     got = hangup.recv() => match got {
                         Some(()) => {
-                            tracing::info!("SIGHUP: reloading every bundle");
+                            tracing::info!("SIGHUP: reloading every bundle and the tokens file");
+                            rules.reload_logged(true);
                             reload(&registry, true).await;
                         }
                         None => break,

@@ -22,7 +22,7 @@
 //! | `tls.cert` | none | server certificate chain (PEM); with `tls.key`, the server speaks TLS only |
 //! | `tls.key` | none | the server certificate's private key (PEM, PKCS#8, PKCS#1 or SEC1) |
 //! | `tls.client_ca` | none | CA certificates (PEM) for client certificates: when set, every client must present one it signed (mutual TLS) and the certificate subject is the caller's identity |
-//! | `auth.tokens_file` | none | file of bearer tokens, one `NAME ROLE SHA256-HEX` a line (`#` comments); see `plumbline token new` |
+//! | `auth.tokens_file` | none | file of bearer tokens, one `NAME ROLE SHA256-HEX` a line (`#` comments); see `plumbline token new`; re-read when it changes and on SIGHUP |
 //! | `auth.tokens` | empty | the same inline: `[[auth.tokens]]` tables with `name`, `role`, `sha256` |
 //! | `models.dir` | `bundles` | directory of `*.plumb` bundles |
 //! | `models.default` | empty | default model id; empty: the only model, or the first id in sort order |

@@ -394,6 +394,66 @@ async fn decisions_and_outcomes_record_the_authenticated_caller() {
     server.stop().await.expect("clean stop");
 }
 
+/// Replaces the tokens file the way an operator (or a Secret volume) does:
+/// a new file renamed over the old one.
+fn replace_tokens(path: &Path, text: &str) {
+    let next = path.with_extension("next");
+    std::fs::write(&next, text).expect("write tokens");
+    std::fs::rename(&next, path).expect("replace tokens");
+}
+
+/// Waits (up to 5 s of polls) until scoring with `token` answers `want`
+/// (true = admitted); the last outcome otherwise.
+async fn settles_to(ep: &str, token: &str, want: bool) -> Result<(), String> {
+    let mut last = String::new();
+    for _ in 0..100 {
+        match score(ep, &with_token(token)).await {
+            Ok(_) if want => return Ok(()),
+            Err((Code::Unauthenticated, _)) if !want => return Ok(()),
+            other => last = format!("{other:?}"),
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    Err(last)
+}
+
+/// Token rotation without a restart: a replaced tokens file takes effect
+/// at the next poll (the old token is refused, the new one admitted and
+/// recorded); a broken file, or one with no tokens, is refused and the
+/// tokens in force stay.
+#[tokio::test]
+async fn a_replaced_tokens_file_rotates_tokens_and_a_broken_one_changes_nothing() {
+    let dir = tempfile::tempdir().expect("temporary directory");
+    let (file, robot, _) = tokens_file(dir.path());
+    let server = start(|s| s.auth.tokens_file = Some(file.clone())).await;
+    let ep = server.endpoint();
+    score(&ep, &with_token(&robot)).await.expect("robot scores");
+
+    let fresh = "plb_robot-after-rotation".to_string();
+    replace_tokens(&file, &format!("robot2 score {}\n", token_sha256(&fresh)));
+    settles_to(&ep, &robot, false)
+        .await
+        .expect("the rotated-out token is refused");
+    settles_to(&ep, &fresh, true)
+        .await
+        .expect("the new token is admitted");
+    let answer = score(&ep, &with_token(&fresh)).await.expect("scores");
+    assert_eq!(
+        identity_of(&server, &answer.request_id).as_deref(),
+        Some("token:robot2")
+    );
+
+    for broken in ["robot3 superuser 00\n", "# every token removed\n"] {
+        replace_tokens(&file, broken);
+        // Several poll intervals: had it been taken, the old token would fail.
+        tokio::time::sleep(Duration::from_millis(300)).await;
+        score(&ep, &with_token(&fresh))
+            .await
+            .unwrap_or_else(|e| panic!("after {broken:?} the tokens in force stay: {e:?}"));
+    }
+    server.stop().await.expect("clean stop");
+}
+
 #[tokio::test]
 async fn admin_token_may_call_every_service() {
     let boss = "plb_admin-token-for-tests";
