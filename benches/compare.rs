@@ -41,7 +41,7 @@ use std::process::Command;
 use std::time::{Duration, Instant};
 
 use common::synthetic;
-use drive::{Server, batches, client, request, runtime, unary_latency};
+use drive::{Server, batches, client, request, runtime, unary_latency, warm_up};
 use ndarray::{Array1, Array2, ArrayView2, s};
 use plumbline::bundle::{Card, Claims, DomainSummary, YRandomization};
 use plumbline::domain::DomainSettings;
@@ -540,18 +540,24 @@ fn service(dir: &Path, reps: usize, seconds: f64) -> Value {
     let duration = Duration::from_secs_f64(seconds);
     let mut runs: BTreeMap<&str, Vec<Value>> = BTreeMap::new();
     for rep in 0..reps {
-        for (name, port) in [("plumbline", ours.port), ("python", theirs.port)] {
-            let rate = rt.block_on(batches(port, &batch, SERVICE_CLIENTS, duration, usize::MAX));
+        for (name, server) in [("plumbline", &ours), ("python", &theirs)] {
+            let port = server.port;
+            rt.block_on(warm_up(port, &batch));
+            let cpu = server.cpu_seconds();
+            let done = rt.block_on(batches(port, &batch, SERVICE_CLIENTS, duration, usize::MAX));
+            let cpu_us = (server.cpu_seconds() - cpu) / done.candidates as f64 * 1e6;
+            let rate = done.rate();
             let (p50, p99, calls) = rt.block_on(unary_latency(port, &one, duration, 1_000_000));
             eprintln!(
-                "service {name}, run {}: {rate:.0} candidates/s; unary p50 {:.3} ms, p99 {:.3} ms \
-                 over {calls} calls",
+                "service {name}, run {}: {rate:.0} candidates/s ({cpu_us:.0} server CPU-µs per \
+                 candidate); unary p50 {:.3} ms, p99 {:.3} ms over {calls} calls",
                 rep + 1,
                 p50 * 1e3,
                 p99 * 1e3
             );
             runs.entry(name).or_default().push(json!({
-                "candidates_per_s": rate, "p50_ms": p50 * 1e3, "p99_ms": p99 * 1e3,
+                "candidates_per_s": rate, "cpu_us_per_candidate": cpu_us,
+                "p50_ms": p50 * 1e3, "p99_ms": p99 * 1e3,
                 "unary_calls": calls,
             }));
         }
@@ -571,6 +577,7 @@ fn service(dir: &Path, reps: usize, seconds: f64) -> Value {
         out[name] = json!({
             "runs": r,
             "candidates_per_s": median(col("candidates_per_s")),
+            "cpu_us_per_candidate": median(col("cpu_us_per_candidate")),
             "p50_ms": median(col("p50_ms")),
             "p99_ms": median(col("p99_ms")),
             "peak_rss_mib": kib as f64 / 1024.0,

@@ -50,6 +50,25 @@ impl Server {
         Server { child, port }
     }
 
+    /// CPU seconds the server process has used so far, all threads, user
+    /// and system (/proc/<pid>/stat fields 14 and 15, in USER_HZ = 100
+    /// ticks per second, fixed by the Linux ABI): the cost of the work
+    /// apart from how much of the machine the server got.
+    pub fn cpu_seconds(&self) -> f64 {
+        let stat = std::fs::read_to_string(format!("/proc/{}/stat", self.child.id()))
+            .expect("read the server's /proc stat");
+        // The command name (field 2) may hold spaces; fields after it are
+        // counted from its closing parenthesis.
+        let rest = &stat[stat.rfind(')').expect("stat has a command name") + 1..];
+        let f: Vec<f64> = rest
+            .split_whitespace()
+            .skip(11)
+            .take(2)
+            .map(|v| v.parse().expect("tick counts"))
+            .collect();
+        (f[0] + f[1]) / 100.0
+    }
+
     /// Stops the server (stdin closed = shutdown) and returns its peak RSS
     /// in KiB, read from /proc before it exits.
     pub fn stop(mut self) -> u64 {
@@ -99,22 +118,36 @@ pub fn request(candidates: Vec<pb::Candidate>) -> pb::ScoreRequest {
     }
 }
 
-/// Candidates per second over `clients` concurrent clients (one connection
-/// each) sending `batch` again and again, bounded by `duration` and by
-/// `max_batches` per client.
+/// One call of `batch`, before timing.
+pub async fn warm_up(port: u16, batch: &[pb::Candidate]) {
+    client(port)
+        .await
+        .score(request(batch.to_vec()))
+        .await
+        .expect("warm-up");
+}
+
+/// Candidates scored and the wall time it took.
+pub struct Throughput {
+    pub candidates: usize,
+    pub seconds: f64,
+}
+
+impl Throughput {
+    pub fn rate(&self) -> f64 {
+        self.candidates as f64 / self.seconds
+    }
+}
+
+/// `clients` concurrent clients (one connection each) sending `batch` again
+/// and again, bounded by `duration` and by `max_batches` per client.
 pub async fn batches(
     port: u16,
     batch: &[pb::Candidate],
     clients: usize,
     duration: Duration,
     max_batches: usize,
-) -> f64 {
-    // One warm-up call.
-    let _ = client(port)
-        .await
-        .score(request(batch.to_vec()))
-        .await
-        .expect("warm-up");
+) -> Throughput {
     let mut conns = Vec::with_capacity(clients);
     for _ in 0..clients {
         conns.push(client(port).await);
@@ -135,11 +168,14 @@ pub async fn batches(
             scored
         }));
     }
-    let mut total = 0;
+    let mut candidates = 0;
     for t in tasks {
-        total += t.await.expect("client");
+        candidates += t.await.expect("client");
     }
-    total as f64 / start.elapsed().as_secs_f64()
+    Throughput {
+        candidates,
+        seconds: start.elapsed().as_secs_f64(),
+    }
 }
 
 /// Latency quantiles (p50, p99, seconds) of sequential single-candidate

@@ -80,6 +80,14 @@ def main():
             f"{a['candidates_per_s']:,.0f}", f"{b['candidates_per_s']:,.0f}",
             f"{ratio:.1f}×", "≥ 10×", "met" if ratio >= 10 else "missed",
         ))
+        if "cpu_us_per_candidate" in a:
+            # CPU time per candidate: the cost of the work, whatever share of
+            # a loaded machine each server got.
+            rows.append((
+                "  server CPU per candidate in those batches (µs)",
+                f"{a['cpu_us_per_candidate']:.0f}", f"{b['cpu_us_per_candidate']:.0f}",
+                f"{b['cpu_us_per_candidate'] / a['cpu_us_per_candidate']:.1f}×", "", "",
+            ))
         for q in ("p50", "p99"):
             target = "< 2 ms" if q == "p99" else ""
             verdict = ("met" if a["p99_ms"] < 2.0 else "missed") if q == "p99" else ""
