@@ -15,23 +15,41 @@
 //! - the nested 5 × 5 kernel ridge grid search on 2,000 × 200 with fixed
 //!   cluster labels (the k-means is shared input, not timed on either side);
 //! - dense f64 GEMM on both cores (faer), square and in the shape of one
-//!   kernel block, as the machine's practical limit.
+//!   kernel block, as the machine's practical limit;
+//! - the service (`--only service` runs it alone): the ridge bundle of the
+//!   offline comparison served by plumbline (this binary re-run as the
+//!   server child, audit store on) and by the Python grpcio server of
+//!   `benches/reference/serve.py` over the reference pipeline, both driven
+//!   by the same tonic client code (`common/drive.rs`): batches of 1,000
+//!   from 4 concurrent clients for a fixed time, then single-candidate
+//!   unary calls for p50/p99. Before timing, one batch is sent to both and
+//!   every prediction, interval, domain signal, status and rank must agree
+//!   (else the run fails), so the two servers are timed on equal work.
 
 #![allow(clippy::unwrap_used, clippy::expect_used)]
 
 mod common;
+#[path = "common/drive.rs"]
+mod drive;
+#[path = "common/server.rs"]
+mod server;
 
+use std::collections::BTreeMap;
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
-use std::time::Instant;
+use std::process::Command;
+use std::time::{Duration, Instant};
 
 use common::synthetic;
+use drive::{Server, batches, client, request, runtime, unary_latency, warm_up};
 use ndarray::{Array1, Array2, ArrayView2, s};
+use plumbline::bundle::{Card, Claims, DomainSummary, YRandomization};
 use plumbline::domain::DomainSettings;
 use plumbline::models::{self, Family, Hyper};
+use plumbline::pb;
 use plumbline::scoring::{Direction, ModelInfo, ScoringModel};
 use plumbline::space::Standardizer;
-use plumbline::validate::{self, FoldDesign, Folds, NestedSettings};
+use plumbline::validate::{self, Estimate, FoldDesign, Folds, NestedSettings};
 use rand::{Rng, SeedableRng};
 use rand_xoshiro::Xoshiro256PlusPlus;
 use serde_json::{Value, json};
@@ -289,13 +307,294 @@ fn gemm(reps: usize) -> Value {
     Value::Array(out)
 }
 
-/// `DIR [--reps N] [--fit-reps N] [--queries N] [--only gemm,score,fit]`; `cargo bench`
-/// adds a bare `--bench`, which is skipped.
+/// Batch size and concurrent clients of the service comparison, as
+/// `benches/serve.rs`.
+const SERVICE_BATCH: usize = 1_000;
+const SERVICE_CLIENTS: usize = 4;
+/// Set in the server child's environment: its `main` serves this folder.
+const SERVICE_CHILD_ENV: &str = "COMPARE_SERVICE_CHILD_DIR";
+/// Agreement of the two servers, relative to the largest magnitude of each
+/// output over the sample: the same tolerance as the offline comparison
+/// (pipeline.py), since both answer from the same computations and the wire
+/// carries f64 exactly.
+const SERVICE_REL_TOL: f64 = 1e-9;
+
+/// A card for the benchmark bundle: the model is assembled at a fixed
+/// setting, so no claims were measured (NaN, stored as null).
+fn bench_card(model: &ScoringModel, n: usize) -> Card {
+    let nan = Estimate {
+        mean: f64::NAN,
+        se: f64::NAN,
+    };
+    let claims = Claims {
+        mse: nan,
+        rmse: nan,
+        mae: nan,
+        r2: nan,
+        pearson: nan,
+        spearman: nan,
+    };
+    let (s, t, pca) = (
+        model.domain.settings(),
+        model.domain.thresholds(),
+        model.domain.pca(),
+    );
+    Card {
+        target_column: "y".into(),
+        family: "ridge".into(),
+        claims,
+        random_split: claims,
+        y_randomization: YRandomization {
+            permutations: 0,
+            real_q2: f64::NAN,
+            permuted_q2: Vec::new(),
+            p_value: 1.0,
+        },
+        domain: DomainSummary {
+            k: s.k,
+            components: pca.n_components(),
+            explained_variance: pca.explained_variance_ratio.sum(),
+            z: s.z,
+            z_threshold: t.z_threshold,
+            leverage_warning: t.leverage_warning,
+            leverage_meaningful: t.leverage_meaningful,
+            residual_border_limit: t.residual_border_limit,
+            residual_outside_limit: t.residual_outside_limit,
+            typicality_border: s.typicality_border,
+            typicality_outside: s.typicality_outside,
+            oof_verdict_counts: BTreeMap::new(),
+        },
+        conformal_method: "CV+ (Barber et al. 2021), pooled".into(),
+        conformal_bands: Vec::new(),
+        training_rows: n,
+        dropped_constant: Vec::new(),
+        data_sha256: String::new(),
+        seed: SEED,
+        split: "cluster".into(),
+        folds: 5,
+        inner_folds: 0,
+        created_at: String::new(),
+        tool_version: String::new(),
+        cautions: vec![
+            "Benchmark bundle: assembled at a fixed setting, no claims measured.".into(),
+        ],
+    }
+}
+
+fn candidates(x: ArrayView2<f64>, prefix: &str) -> Vec<pb::Candidate> {
+    x.rows()
+        .into_iter()
+        .enumerate()
+        .map(|(i, r)| pb::Candidate {
+            id: format!("{prefix}{i}"),
+            descriptors: r.to_vec(),
+        })
+        .collect()
+}
+
+/// Compares the two servers' answers to one batch candidate by candidate and
+/// panics on the first disagreement: timing unequal work would be no
+/// comparison. Returns the largest relative difference per output.
+fn service_agreement(ours: &pb::ScoreResponse, theirs: &pb::ScoreResponse) -> Value {
+    let (a, b) = (&ours.results, &theirs.results);
+    assert_eq!(a.len(), b.len(), "service agreement: result counts differ");
+    let mut statuses = BTreeMap::<String, usize>::new();
+    for (x, y) in a.iter().zip(b) {
+        assert_eq!(x.id, y.id, "service agreement: results out of order");
+        assert_eq!(
+            (x.status, x.rank, x.lower_unbounded, x.upper_unbounded),
+            (y.status, y.rank, y.lower_unbounded, y.upper_unbounded),
+            "service agreement: candidate {} differs in (status, rank, unbounded sides)",
+            x.id
+        );
+        let (dx, dy) = (x.domain.as_ref(), y.domain.as_ref());
+        assert_eq!(
+            dx.map(|d| (d.verdict, d.beyond_z_threshold)),
+            dy.map(|d| (d.verdict, d.beyond_z_threshold)),
+            "service agreement: candidate {} differs in its domain verdict",
+            x.id
+        );
+        *statuses
+            .entry(
+                pb::Status::try_from(x.status)
+                    .map_or("unknown", |s| s.as_str_name())
+                    .to_string(),
+            )
+            .or_default() += 1;
+    }
+    type Field = fn(&pb::ScoredCandidate) -> Option<f64>;
+    let fields: [(&str, Field); 7] = [
+        ("prediction", |c| c.prediction),
+        ("lower", |c| c.lower),
+        ("upper", |c| c.upper),
+        ("knn_distance", |c| {
+            c.domain.as_ref().map(|d| d.knn_distance)
+        }),
+        ("typicality", |c| c.domain.as_ref().map(|d| d.typicality)),
+        ("leverage", |c| c.domain.as_ref().map(|d| d.leverage)),
+        ("pca_residual", |c| {
+            c.domain.as_ref().map(|d| d.pca_residual)
+        }),
+    ];
+    let mut report = serde_json::Map::new();
+    for (name, get) in fields {
+        let pairs: Vec<(f64, f64)> = a
+            .iter()
+            .zip(b)
+            .map(|(x, y)| match (get(x), get(y)) {
+                (Some(u), Some(v)) => (u, v),
+                (None, None) => (0.0, 0.0),
+                (u, v) => panic!(
+                    "service agreement: {name} of candidate {} is {u:?} here and {v:?} in the \
+                     reference server",
+                    x.id
+                ),
+            })
+            .collect();
+        let scale = pairs
+            .iter()
+            .map(|p| p.1.abs())
+            .fold(f64::MIN_POSITIVE, f64::max);
+        let worst = pairs
+            .iter()
+            .map(|(u, v)| (u - v).abs() / scale)
+            .fold(0.0, f64::max);
+        assert!(
+            worst <= SERVICE_REL_TOL,
+            "service agreement: {name} differs by {worst:.3e} (relative), tolerance {SERVICE_REL_TOL}"
+        );
+        report.insert(
+            name.into(),
+            json!({"max_rel_diff": worst, "tolerance": SERVICE_REL_TOL}),
+        );
+    }
+    json!({"candidates": a.len(), "statuses": statuses, "outputs": report})
+}
+
+/// The Python reference server on the same inputs; `PYTHON` names the
+/// interpreter (default python3).
+fn python_server(dir: &Path) -> Server {
+    let python = std::env::var("PYTHON").unwrap_or_else(|_| "python3".into());
+    let mut cmd = Command::new(python);
+    cmd.arg(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/benches/reference/serve.py"
+    ))
+    .arg(dir)
+    .arg("--threads")
+    .arg(SERVICE_CLIENTS.to_string());
+    Server::spawn(cmd)
+}
+
+fn service(dir: &Path, reps: usize, seconds: f64) -> Value {
+    let (n, p) = (5_000, 200);
+    // The training rows are the offline comparison's (the generator draws
+    // row by row), the queries its first ones.
+    let (x, y) = synthetic(n + SERVICE_BATCH + 1, p, SEED);
+    let (x_train, y_train) = (x.slice(s![..n, ..]), y.slice(s![..n]).to_owned());
+    write_csv(&dir.join("score_train.csv"), x_train, &y_train).expect("write score_train.csv");
+    let design = cluster_design(x_train);
+    let all: Vec<usize> = (0..n).collect();
+    let folds = design.folds(&all, 5, SEED).expect("cluster folds");
+    let model = scoring_model(x_train, &y_train, &folds, RIDGE);
+    let sdir = dir.join("service");
+    let _ = std::fs::remove_dir_all(&sdir);
+    std::fs::create_dir_all(sdir.join("bundles")).expect("bundle folder");
+    let ids: Vec<String> = (0..n).map(|i| format!("r{i}")).collect();
+    plumbline::bundle::write(
+        &sdir.join("bundles").join("bench.plumb"),
+        &model,
+        &bench_card(&model, n),
+        &ids,
+        y_train.as_slice().expect("contiguous targets"),
+    )
+    .expect("write the benchmark bundle");
+    let spec = json!({
+        "fold_of": folds.fold_of, "k": folds.k, "hyper": RIDGE,
+        "pca_components": model.domain.pca().n_components(),
+        "confidence": CONFIDENCE,
+        "domain": model.domain.settings(),
+    });
+    std::fs::write(dir.join("service_model.json"), spec.to_string())
+        .expect("write service_model.json");
+    let queries = x.slice(s![n.., ..]);
+    let batch = candidates(queries.slice(s![..SERVICE_BATCH, ..]), "q");
+    let one = candidates(queries.slice(s![SERVICE_BATCH.., ..]), "one").remove(0);
+
+    let ours = Server::own_child(SERVICE_CHILD_ENV, &sdir);
+    let theirs = python_server(dir);
+    let rt = runtime();
+    let answer = |port: u16| {
+        rt.block_on(async {
+            client(port)
+                .await
+                .score(request(batch.clone()))
+                .await
+                .expect("score the agreement batch")
+                .into_inner()
+        })
+    };
+    let agreement = service_agreement(&answer(ours.port), &answer(theirs.port));
+    eprintln!("service: the two servers agree on {SERVICE_BATCH} candidates: {agreement}");
+
+    let duration = Duration::from_secs_f64(seconds);
+    let mut runs: BTreeMap<&str, Vec<Value>> = BTreeMap::new();
+    for rep in 0..reps {
+        for (name, server) in [("plumbline", &ours), ("python", &theirs)] {
+            let port = server.port;
+            rt.block_on(warm_up(port, &batch));
+            let cpu = server.cpu_seconds();
+            let done = rt.block_on(batches(port, &batch, SERVICE_CLIENTS, duration, usize::MAX));
+            let cpu_us = (server.cpu_seconds() - cpu) / done.candidates as f64 * 1e6;
+            let rate = done.rate();
+            let (p50, p99, calls) = rt.block_on(unary_latency(port, &one, duration, 1_000_000));
+            eprintln!(
+                "service {name}, run {}: {rate:.0} candidates/s ({cpu_us:.0} server CPU-µs per \
+                 candidate); unary p50 {:.3} ms, p99 {:.3} ms over {calls} calls",
+                rep + 1,
+                p50 * 1e3,
+                p99 * 1e3
+            );
+            runs.entry(name).or_default().push(json!({
+                "candidates_per_s": rate, "cpu_us_per_candidate": cpu_us,
+                "p50_ms": p50 * 1e3, "p99_ms": p99 * 1e3,
+                "unary_calls": calls,
+            }));
+        }
+    }
+    let rss = [("plumbline", ours.stop()), ("python", theirs.stop())];
+    let mut out = json!({
+        "batch": SERVICE_BATCH, "clients": SERVICE_CLIENTS, "seconds_per_phase": seconds,
+        "python_threads": SERVICE_CLIENTS, "agreement": agreement,
+    });
+    for (name, kib) in rss {
+        let r = &runs[name];
+        let col = |k: &str| {
+            r.iter()
+                .map(|v| v[k].as_f64().unwrap_or(f64::NAN))
+                .collect::<Vec<_>>()
+        };
+        out[name] = json!({
+            "runs": r,
+            "candidates_per_s": median(col("candidates_per_s")),
+            "cpu_us_per_candidate": median(col("cpu_us_per_candidate")),
+            "p50_ms": median(col("p50_ms")),
+            "p99_ms": median(col("p99_ms")),
+            "peak_rss_mib": kib as f64 / 1024.0,
+        });
+    }
+    out
+}
+
+/// `DIR [--reps N] [--fit-reps N] [--queries N] [--service-seconds S]
+/// [--only gemm,score,fit,service]`; `cargo bench` adds a bare `--bench`,
+/// which is skipped.
 struct Args {
     dir: PathBuf,
     reps: usize,
     fit_reps: usize,
     n_queries: usize,
+    service_seconds: f64,
     only: Option<String>,
 }
 
@@ -305,6 +604,7 @@ fn parse_args() -> Args {
         reps: 3,
         fit_reps: 3,
         n_queries: 100_000,
+        service_seconds: 8.0,
         only: None,
     };
     let mut it = std::env::args().skip(1);
@@ -318,6 +618,14 @@ fn parse_args() -> Args {
             "--reps" => args.reps = count("--reps", it.next()),
             "--fit-reps" => args.fit_reps = count("--fit-reps", it.next()),
             "--queries" => args.n_queries = count("--queries", it.next()),
+            "--service-seconds" => {
+                let v = it.next().unwrap_or_default();
+                args.service_seconds = v
+                    .parse()
+                    .ok()
+                    .filter(|s: &f64| *s > 0.0)
+                    .unwrap_or_else(|| panic!("--service-seconds takes seconds > 0, got {v:?}"));
+            }
             "--only" => args.only = it.next(),
             "--bench" => {}
             other => args.dir = PathBuf::from(other),
@@ -327,11 +635,16 @@ fn parse_args() -> Args {
 }
 
 fn main() {
+    if let Ok(dir) = std::env::var(SERVICE_CHILD_ENV) {
+        server::serve_child(Path::new(&dir), |s| s.models.reload_poll_ms = 0);
+        return;
+    }
     let Args {
         dir,
         reps,
         fit_reps,
         n_queries,
+        service_seconds,
         only,
     } = parse_args();
     std::fs::create_dir_all(&dir).expect("create the output folder");
@@ -351,6 +664,9 @@ fn main() {
     }
     if want("fit") {
         result["fit"] = fit_search(&dir, fit_reps);
+    }
+    if want("service") {
+        result["service"] = service(&dir, reps, service_seconds);
     }
     let path = dir.join("plumbline.json");
     std::fs::write(
