@@ -26,6 +26,7 @@ pub mod convert;
 pub mod engine;
 mod error;
 pub mod limits;
+mod memory;
 pub mod metrics;
 pub mod outcomes_api;
 pub mod registry;
@@ -462,12 +463,15 @@ fn spawn_background(
 async fn reload(registry: &Arc<Registry>, force: bool) {
     let registry = registry.clone();
     match tokio::task::spawn_blocking(move || registry.rescan(force)).await {
-        Ok(report) if report.swapped => tracing::info!(
-            loaded = report.loaded.len(),
-            removed = report.removed.len(),
-            failed = report.failed.len(),
-            "models swapped"
-        ),
+        Ok(report) if report.swapped => {
+            tracing::info!(
+                loaded = report.loaded.len(),
+                removed = report.removed.len(),
+                failed = report.failed.len(),
+                "models swapped"
+            );
+            memory::release_after_swap();
+        }
         Ok(_) => {}
         Err(e) => tracing::error!(error = %e, "model reload task failed"),
     }
