@@ -93,12 +93,16 @@ fn main() {
         late / 1024.0,
         growth * 100.0
     );
+    println!(
+        "soak: server RSS over time (MiB all/heap/shared):{}",
+        rss.profile(15.0)
+    );
     for e in report.errors.iter().take(5) {
         println!("  {e}");
     }
-    // A short run is mostly warm-up (SQLite's page cache, up to 64 MiB,
-    // fills as the store grows), so RSS growth is judged only on runs long
-    // enough to have a first and a last minute apart from it.
+    // A short run is mostly warm-up (SQLite's page cache fills as the store
+    // grows), so RSS growth is judged only on runs long enough to have a
+    // first and a last minute apart.
     let judged = secs >= RSS_JUDGED_SECS;
     if !judged {
         println!("soak: RSS growth reported, not judged (runs under {RSS_JUDGED_SECS} s)");
@@ -155,24 +159,59 @@ fn write_atomically(path: &Path, bytes: &[u8]) {
 struct Server {
     child: Child,
     port: u16,
-    samples: Arc<std::sync::Mutex<Vec<(f64, f64)>>>,
+    samples: Arc<std::sync::Mutex<Vec<Sample>>>,
     sampling: Arc<AtomicBool>,
 }
 
-/// RSS samples (seconds since start, KiB).
-struct Rss(Vec<(f64, f64)>);
+/// One reading of the server's memory: seconds since start, then resident
+/// KiB in all, of it anonymous (heap), and shared (SQLite's WAL index).
+#[derive(Clone, Copy)]
+struct Sample {
+    t: f64,
+    rss: f64,
+    anon: f64,
+    shmem: f64,
+}
+
+/// RSS samples.
+struct Rss(Vec<Sample>);
 
 impl Rss {
-    /// Mean RSS over the first and the last window: a minute, or a fifth of
-    /// the run when it is shorter than five minutes.
+    /// Mean RSS over the first and the last window: a minute when the run
+    /// has a first and a last minute apart, else a fifth of the run.
     fn windows(&self, secs: u64) -> (f64, f64) {
-        let w = if secs >= 300 { 60.0 } else { secs as f64 / 5.0 };
-        let end = self.0.last().map(|s| s.0).unwrap_or(0.0);
+        let w = if secs >= RSS_JUDGED_SECS {
+            60.0
+        } else {
+            secs as f64 / 5.0
+        };
+        let end = self.0.last().map(|s| s.t).unwrap_or(0.0);
         let mean = |keep: &dyn Fn(f64) -> bool| {
-            let v: Vec<f64> = self.0.iter().filter(|s| keep(s.0)).map(|s| s.1).collect();
+            let v: Vec<f64> = self.0.iter().filter(|s| keep(s.t)).map(|s| s.rss).collect();
             v.iter().sum::<f64>() / v.len().max(1) as f64
         };
         (mean(&|t| t <= w), mean(&|t| t >= end - w))
+    }
+
+    /// The RSS every `step` seconds (all/heap/shared MiB), for seeing
+    /// where growth happens.
+    fn profile(&self, step: f64) -> String {
+        let mut out = String::new();
+        let mut next = 0.0;
+        for s in &self.0 {
+            if s.t >= next {
+                let mib = |k: f64| k / 1024.0;
+                out.push_str(&format!(
+                    " {:.0}s {:.1}/{:.1}/{:.1}",
+                    s.t,
+                    mib(s.rss),
+                    mib(s.anon),
+                    mib(s.shmem)
+                ));
+                next += step;
+            }
+        }
+        out
     }
 }
 
@@ -201,11 +240,8 @@ impl Server {
             std::thread::spawn(move || {
                 let start = Instant::now();
                 while sampling.load(Ordering::Relaxed) {
-                    if let Some(kib) = rss_kib(pid) {
-                        samples
-                            .lock()
-                            .unwrap()
-                            .push((start.elapsed().as_secs_f64(), kib));
+                    if let Some(s) = memory(pid, start.elapsed().as_secs_f64()) {
+                        samples.lock().unwrap().push(s);
                     }
                     std::thread::sleep(Duration::from_millis(500));
                 }
@@ -228,12 +264,20 @@ impl Server {
     }
 }
 
-fn rss_kib(pid: u32) -> Option<f64> {
+fn memory(pid: u32, t: f64) -> Option<Sample> {
     let status = std::fs::read_to_string(format!("/proc/{pid}/status")).ok()?;
-    status
-        .lines()
-        .find_map(|l| l.strip_prefix("VmRSS:"))
-        .and_then(|v| v.trim().trim_end_matches("kB").trim().parse().ok())
+    let field = |name: &str| -> Option<f64> {
+        status
+            .lines()
+            .find_map(|l| l.strip_prefix(name))
+            .and_then(|v| v.trim().trim_end_matches("kB").trim().parse().ok())
+    };
+    Some(Sample {
+        t,
+        rss: field("VmRSS:")?,
+        anon: field("RssAnon:").unwrap_or(0.0),
+        shmem: field("RssShmem:").unwrap_or(0.0),
+    })
 }
 
 async fn client(port: u16) -> ScoringClient<tonic::transport::Channel> {

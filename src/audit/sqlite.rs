@@ -125,7 +125,7 @@ pub fn open_for_writing(path: &Path, synchronous: Synchronous) -> Result<Connect
         .map_err(open_err)?;
     // A page cache that holds the hot end of the tables and indexes: every
     // commit appends there.
-    conn.pragma_update(None, "cache_size", -65_536)
+    conn.pragma_update(None, "cache_size", -8_192)
         .map_err(open_err)?;
     migrate(&conn, path).map_err(|e| match e {
         Error::Migrate { source, .. } if is_locked(&source) => Error::Locked {
