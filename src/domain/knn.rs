@@ -144,10 +144,6 @@ const SCAN_FROM_DIMS: usize = 10;
 /// coordinates stream past.
 const SCAN_LANES: usize = 16;
 
-/// The scan checks every this many dimensions whether a block can still
-/// hold a neighbour (a few comparisons against a few dimensions' work).
-const PRUNE_EVERY: usize = 3;
-
 /// The training points of one guard, searchable by distance.
 /// Not `Clone` (kiddo's arena storage is not); guards share it by `Arc`.
 #[derive(Debug)]
@@ -274,28 +270,13 @@ fn scan_avx(blocks: &[[f64; SCAN_LANES]], query: &[f64], best: &mut [f64]) {
 fn scan_portable(blocks: &[[f64; SCAN_LANES]], query: &[f64], best: &mut [f64]) {
     let dims = query.len();
     let last = best.len() - 1;
-    'blocks: for block in blocks.chunks_exact(dims) {
+    for block in blocks.chunks_exact(dims) {
         let mut acc = [0.0f64; SCAN_LANES];
-        for (j, (coords, &q)) in block.iter().zip(query).enumerate() {
+        for (coords, &q) in block.iter().zip(query) {
             for (a, &t) in acc.iter_mut().zip(coords) {
                 // kiddo's SquaredEuclidean: (a − b)², added in dimension order.
                 let d = t - q;
                 *a += d * d;
-            }
-            // A block whose partial sums already reach the k-th best cannot
-            // hold a new neighbour: the terms still to come are ≥ 0 and
-            // rounding is monotone, so each full sum is ≥ its partial sum.
-            // Skipping it changes no value kept. PCA puts the widest
-            // components first, so most blocks stop after a few of them.
-            if (j + 1) % PRUNE_EVERY == 0 && j + 1 < dims {
-                let worst = best[last];
-                let mut live = false;
-                for &v in &acc {
-                    live |= v < worst;
-                }
-                if !live {
-                    continue 'blocks;
-                }
             }
         }
         // Most blocks hold no new neighbour: one pass of comparisons.
