@@ -182,7 +182,7 @@ fn prepare_connection(
     // commit appends there.
     conn.pragma_update(None, "cache_size", -65_536)
         .map_err(open_err)?;
-    migrate(&conn, path).map_err(|e| match e {
+    migrate(conn, path).map_err(|e| match e {
         Error::Migrate { source, .. } if is_locked(&source) => Error::Locked {
             path: path.to_path_buf(),
             source,
@@ -721,7 +721,9 @@ mod tests {
         let sql = candidates_sql(&conn);
         assert!(!sql.contains(" IN ("), "{sql}");
         assert!(sql.contains("status = 'rejected'"), "{sql}");
-        let mut explain = conn.prepare(&format!("EXPLAIN {INSERT_CANDIDATE}")).unwrap();
+        let mut explain = conn
+            .prepare(&format!("EXPLAIN {INSERT_CANDIDATE}"))
+            .unwrap();
         // EXPLAIN compiles without running: the parameters stay unbound.
         let mut rows = explain.raw_query();
         let mut plan: Vec<String> = Vec::new();
