@@ -125,17 +125,7 @@ fn table(seed: u64) -> Table {
         .into_iter()
         .map(|r| (0..20).map(|j| r[j] * w[j]).sum::<f64>() + rng.gen_range(-0.3..0.3))
         .collect();
-    Table {
-        ids: (0..ROWS).map(|i| format!("t{i}")).collect(),
-        descriptor_names: (0..DESCRIPTORS).map(|j| format!("d{j}")).collect(),
-        x,
-        y: Some(y),
-        groups: None,
-        times: None,
-        dropped_constant: Vec::new(),
-        dropped_incomplete: 0,
-        sha256: format!("{seed:064x}"),
-    }
+    server::training_table(x, y, seed)
 }
 
 /// Fits with the real procedure; the kernel grid is one point so the bench

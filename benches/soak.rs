@@ -18,6 +18,11 @@
 #![allow(clippy::unwrap_used, clippy::expect_used)]
 
 mod common;
+// Only the client and runtime of the shared driver: the soak paces its own
+// calls and samples memory, which the throughput driver does not.
+#[allow(dead_code)]
+#[path = "common/drive.rs"]
+mod drive;
 #[path = "common/server.rs"]
 mod server;
 
@@ -29,11 +34,9 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
 use ndarray::Array2;
-use plumbline::data::Table;
 use plumbline::fit::{FitOptions, SplitSpec};
 use plumbline::models::Family;
 use plumbline::pb;
-use plumbline::pb::scoring_client::ScoringClient;
 use rand::{Rng, SeedableRng};
 use tonic::Code;
 
@@ -69,11 +72,7 @@ fn main() {
     let (second, _) = bundle_bytes(2);
     write_atomically(&bundles.join("soak.plumb"), &first);
     let server = Server::start(work.path());
-    let rt = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .expect("runtime");
+    let rt = drive::runtime();
     let report = rt.block_on(drive(&server, &bundles, &second, &x, secs, rate));
     let rss = server.stop();
     let (early, late) = rss.windows(secs);
@@ -122,17 +121,7 @@ fn main() {
 /// data, hence the version), and the training rows for drawing candidates.
 fn bundle_bytes(seed: u64) -> (Vec<u8>, Array2<f64>) {
     let (x, y) = common::synthetic(ROWS, DESCRIPTORS, seed);
-    let table = Table {
-        ids: (0..ROWS).map(|i| format!("t{i}")).collect(),
-        descriptor_names: (0..DESCRIPTORS).map(|j| format!("d{j}")).collect(),
-        x: x.clone(),
-        y: Some(y),
-        groups: None,
-        times: None,
-        dropped_constant: Vec::new(),
-        dropped_incomplete: 0,
-        sha256: format!("{seed:064x}"),
-    };
+    let table = server::training_table(x.clone(), y, seed);
     let mut options = FitOptions::new("soak", "activity");
     options.families = vec![Family::Ridge];
     options.split = SplitSpec::Random;
@@ -280,16 +269,6 @@ fn memory(pid: u32, t: f64) -> Option<Sample> {
     })
 }
 
-async fn client(port: u16) -> ScoringClient<tonic::transport::Channel> {
-    let channel = tonic::transport::Channel::from_shared(format!("http://127.0.0.1:{port}"))
-        .expect("endpoint")
-        .tcp_nodelay(true)
-        .connect()
-        .await
-        .expect("connect");
-    ScoringClient::new(channel)
-}
-
 fn request(candidates: Vec<pb::Candidate>) -> pb::ScoreRequest {
     pb::ScoreRequest {
         model: String::new(),
@@ -380,7 +359,7 @@ async fn drive(
     let period = Duration::from_secs_f64(CLIENTS as f64 / rate as f64);
     let mut tasks = Vec::new();
     for k in 0..CLIENTS {
-        let mut c = client(server.port).await;
+        let mut c = drive::client(server.port).await;
         let x = x.clone();
         tasks.push(tokio::spawn(async move {
             let mut rng = rand_xoshiro::Xoshiro256PlusPlus::seed_from_u64(k as u64);

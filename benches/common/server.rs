@@ -5,7 +5,26 @@
 use std::io::Write;
 use std::path::Path;
 
+use ndarray::{Array1, Array2};
+use plumbline::data::Table;
 use plumbline::service::Settings;
+
+/// A training table for a benchmark bundle: rows `t0…`, descriptors
+/// `d0…`, and a content hash made from `seed` so each seed is a new version.
+#[allow(dead_code)] // the comparison bench brings its own tables
+pub fn training_table(x: Array2<f64>, y: Array1<f64>, seed: u64) -> Table {
+    Table {
+        ids: (0..x.nrows()).map(|i| format!("t{i}")).collect(),
+        descriptor_names: (0..x.ncols()).map(|j| format!("d{j}")).collect(),
+        x,
+        y: Some(y),
+        groups: None,
+        times: None,
+        dropped_constant: Vec::new(),
+        dropped_incomplete: 0,
+        sha256: format!("{seed:064x}"),
+    }
+}
 
 /// Runs the server child; `adjust` sets what the benchmark needs on top of
 /// the `PLUMBLINE_*` environment (e.g. PLUMBLINE_AUDIT__SYNCHRONOUS=normal).
