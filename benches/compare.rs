@@ -547,13 +547,13 @@ fn service(dir: &Path, reps: usize, seconds: f64) -> Value {
             let done = rt.block_on(batches(port, &batch, SERVICE_CLIENTS, duration, usize::MAX));
             let cpu_us = (server.cpu_seconds() - cpu) / done.candidates as f64 * 1e6;
             let rate = done.rate();
-            let (p50, p99, calls) = rt.block_on(unary_latency(port, &one, duration, 1_000_000));
+            let latency = rt.block_on(unary_latency(port, &one, duration, 1_000_000));
+            let (p50, p99, calls) = (latency.p50, latency.p99, latency.calls);
             eprintln!(
                 "service {name}, run {}: {rate:.0} candidates/s ({cpu_us:.0} server CPU-µs per \
-                 candidate); unary p50 {:.3} ms, p99 {:.3} ms over {calls} calls",
+                 candidate); unary {}",
                 rep + 1,
-                p50 * 1e3,
-                p99 * 1e3
+                latency.summary()
             );
             runs.entry(name).or_default().push(json!({
                 "candidates_per_s": rate, "cpu_us_per_candidate": cpu_us,

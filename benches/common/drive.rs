@@ -178,14 +178,39 @@ pub async fn batches(
     }
 }
 
-/// Latency quantiles (p50, p99, seconds) of sequential single-candidate
-/// calls of `one` and the number of calls timed, after 200 warm-up calls.
+/// Unary call latencies in seconds, and how many calls they are over.
+pub struct Latency {
+    pub p50: f64,
+    pub p90: f64,
+    pub p99: f64,
+    pub p999: f64,
+    pub max: f64,
+    pub calls: usize,
+}
+
+impl Latency {
+    /// "p50 …, p90 …, p99 …, p99.9 …, max … ms over N calls".
+    pub fn summary(&self) -> String {
+        format!(
+            "p50 {:.3} ms, p90 {:.3} ms, p99 {:.3} ms, p99.9 {:.3} ms, max {:.3} ms over {} calls",
+            self.p50 * 1e3,
+            self.p90 * 1e3,
+            self.p99 * 1e3,
+            self.p999 * 1e3,
+            self.max * 1e3,
+            self.calls
+        )
+    }
+}
+
+/// Latency quantiles of sequential single-candidate calls of `one`, after
+/// 200 warm-up calls.
 pub async fn unary_latency(
     port: u16,
     one: &pb::Candidate,
     duration: Duration,
     max_calls: usize,
-) -> (f64, f64, usize) {
+) -> Latency {
     let mut c = client(port).await;
     for _ in 0..200 {
         c.score(request(vec![one.clone()])).await.expect("warm-up");
@@ -202,5 +227,12 @@ pub async fn unary_latency(
     }
     times.sort_by(f64::total_cmp);
     let q = |p: f64| times[((times.len() - 1) as f64 * p).round() as usize];
-    (q(0.5), q(0.99), times.len())
+    Latency {
+        p50: q(0.5),
+        p90: q(0.9),
+        p99: q(0.99),
+        p999: q(0.999),
+        max: q(1.0),
+        calls: times.len(),
+    }
 }

@@ -156,6 +156,26 @@ pub fn open_for_writing(path: &Path, synchronous: Synchronous) -> Result<Connect
     Ok(conn)
 }
 
+/// A second connection to a store [`open_for_writing`] has prepared, for
+/// checkpoints only. Its `synchronous` decides whether a checkpoint syncs
+/// the database file, so it is the writer's.
+pub fn open_for_checkpoints(path: &Path, synchronous: Synchronous) -> Result<Connection, Error> {
+    let open_err = |source| opening_error(path, source);
+    let conn = Connection::open(path).map_err(open_err)?;
+    conn.busy_timeout(Duration::from_secs(5))
+        .map_err(open_err)?;
+    conn.pragma_update(None, "synchronous", synchronous_pragma(synchronous))
+        .map_err(open_err)?;
+    Ok(conn)
+}
+
+fn synchronous_pragma(synchronous: Synchronous) -> &'static str {
+    match synchronous {
+        Synchronous::Full => "FULL",
+        Synchronous::Normal => "NORMAL",
+    }
+}
+
 /// Whether the database is behind this build's schema.
 fn migration_pending(conn: &Connection) -> rusqlite::Result<bool> {
     let found: i64 = conn.query_row("PRAGMA user_version", [], |r| r.get(0))?;
@@ -180,11 +200,7 @@ fn prepare_connection(
             "journal_mode is {mode}, WAL is required"
         ))));
     }
-    let sync = match synchronous {
-        Synchronous::Full => "FULL",
-        Synchronous::Normal => "NORMAL",
-    };
-    conn.pragma_update(None, "synchronous", sync)
+    conn.pragma_update(None, "synchronous", synchronous_pragma(synchronous))
         .map_err(open_err)?;
     conn.pragma_update(None, "foreign_keys", "ON")
         .map_err(open_err)?;
