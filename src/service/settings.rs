@@ -36,7 +36,7 @@
 //! | `audit.synchronous` | `full` | SQLite `synchronous` in WAL mode, see [`Synchronous`] |
 //! | `audit.batch_max` | 64 | most requests committed in one transaction |
 //! | `audit.queue_depth` | 1,024 | requests waiting for the audit writer before callers wait |
-//! | `audit.checkpoint_interval_ms` | 30,000 | how often the WAL is checkpointed (PASSIVE) |
+//! | `audit.checkpoint_interval_ms` | 1,000 | how often a background thread checkpoints the WAL (PASSIVE); commits never do |
 //! | `metrics.listen` | empty | address of the Prometheus endpoint (`GET /metrics`, plain HTTP), e.g. `0.0.0.0:9464`; empty = off |
 //! | `audit.max_bytes` | 0 | cap on the audit database's size, 0 = none; past it scoring fails with UNAVAILABLE as on a full disk |
 
@@ -234,7 +234,7 @@ impl Default for AuditSettings {
             synchronous: Synchronous::Full,
             batch_max: 64,
             queue_depth: 1024,
-            checkpoint_interval_ms: 30_000,
+            checkpoint_interval_ms: 1_000,
             max_bytes: 0,
         }
     }
