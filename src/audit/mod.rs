@@ -112,7 +112,7 @@ pub struct Options {
     pub batch_max: usize,
     /// Requests waiting for the writer before callers wait to hand theirs over.
     pub queue_depth: usize,
-    /// How often the WAL is checkpointed (PASSIVE) while commits happen.
+    /// How often the checkpoint thread runs a PASSIVE checkpoint (commits never do).
     pub checkpoint_interval: Duration,
     /// Largest size of the database in bytes, 0 for no cap. Past it commits
     /// fail as they would on a full disk (SQLite's `max_page_count`).
