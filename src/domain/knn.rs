@@ -5,8 +5,9 @@
 //! Why a scan beside the tree: at the service's sizes (5,000 training rows,
 //! 10 components, k = 5) the tree prunes little, because with n/32 leaves
 //! it splits on only the first log₂(n/32) ≈ 7 dimensions; measured on 1,000
-//! queries (shared 2-core machine, `cargo bench --bench domain_conformal`),
-//! the scan below is several times faster (figures in that bench). The scan
+//! queries (`cargo bench --bench domain_conformal`), the scan below is
+//! about 1.5 times faster at 10 dimensions and 3 times at 16 (figures at
+//! [`SCAN_FROM_DIMS`]). The scan
 //! computes every squared distance by exactly the expression kiddo uses
 //! (Σⱼ (tⱼ − qⱼ)² in dimension order, no fused multiply-add), keeps the k
 //! smallest, and sums their square roots nearest first as the tree path
@@ -130,11 +131,12 @@ trees!(
 );
 
 /// From this many dimensions on, batch queries scan instead of using the
-/// tree. Measured on 1,000 queries among 5,000 rows (k = 5, shared 2-core
-/// machine under load): with 10 components of unstructured descriptors the
-/// tree took about 40 µs per query and the scan about 14 µs; on descriptors
-/// driven by 8 or 3 latent factors (8 or 3 components) the tree was 2 to 3
-/// times faster than the scan (`cargo bench --bench domain_conformal`).
+/// tree. Measured on 1,000 queries among 5,000 uniform points (k = 5,
+/// 2-core machine, quiet; the "5-NN distance" lines of
+/// `cargo bench --bench domain_conformal`), tree against scan per query:
+/// 3 dims 0.8 against 5.0 µs, 8 dims 6.7 against 8.5 µs, 10 dims 15.5
+/// against 10.6 µs, 16 dims 53 against 15 µs. On descriptors driven by 8
+/// or 3 latent factors (8 or 3 components) the tree is faster still.
 /// Beyond about 10 dimensions k-d trees prune poorly in general (common
 /// practice).
 const SCAN_FROM_DIMS: usize = 10;
