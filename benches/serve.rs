@@ -24,7 +24,7 @@ mod server;
 use std::path::Path;
 use std::time::{Duration, Instant};
 
-use drive::{Server, batches, runtime, unary_latency, warm_up};
+use drive::{Server, UNARY_WARM_UP_CALLS, batches, runtime, unary_latency, warm_up};
 
 use ndarray::{Array1, Array2};
 use plumbline::data::Table;
@@ -85,8 +85,9 @@ fn main() {
         Duration::from_secs(8),
         20_000,
     ));
-    // Includes the 200 warm-up calls.
-    let unary_cpu_us = (server.cpu_seconds() - cpu) / (latency.calls + 200) as f64 * 1e6;
+    // The server's CPU time covers the warm-up calls too.
+    let unary_cpu_us =
+        (server.cpu_seconds() - cpu) / (latency.calls + UNARY_WARM_UP_CALLS) as f64 * 1e6;
     let rss = server.stop();
     println!(
         "ridge: {rate:.0} candidates/s in batches of {BATCH} from {CLIENTS} clients \

@@ -203,8 +203,11 @@ impl Latency {
     }
 }
 
+/// Untimed calls before [`unary_latency`] times any.
+pub const UNARY_WARM_UP_CALLS: usize = 200;
+
 /// Latency quantiles of sequential single-candidate calls of `one`, after
-/// 200 warm-up calls.
+/// [`UNARY_WARM_UP_CALLS`] untimed ones.
 pub async fn unary_latency(
     port: u16,
     one: &pb::Candidate,
@@ -212,7 +215,7 @@ pub async fn unary_latency(
     max_calls: usize,
 ) -> Latency {
     let mut c = client(port).await;
-    for _ in 0..200 {
+    for _ in 0..UNARY_WARM_UP_CALLS {
         c.score(request(vec![one.clone()])).await.expect("warm-up");
     }
     let start = Instant::now();
