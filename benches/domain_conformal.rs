@@ -166,10 +166,29 @@ fn scan_figures(n: usize, dims: usize) {
             .map(|q| index.scan_mean_distance(q, 5, &mut best))
             .sum::<f64>()
     });
+    assert_eq!(
+        index
+            .scan_mean_distances(&queries, 5, &mut best)
+            .iter()
+            .map(|d| d.to_bits())
+            .collect::<Vec<_>>(),
+        queries
+            .iter()
+            .map(|q| index.mean_distance(q, 5).to_bits())
+            .collect::<Vec<_>>()
+    );
+    let batched = time(7, || {
+        index
+            .scan_mean_distances(&queries, 5, &mut best)
+            .iter()
+            .sum::<f64>()
+    });
     println!(
-        "5-NN distance, {n} uniform points in {dims} dims: tree {:.1} µs, scan {:.1} µs per query",
+        "5-NN distance, {n} uniform points in {dims} dims: tree {:.1} µs, scan {:.1} µs, \
+         batched scan {:.1} µs per query",
         tree * 1e3,
-        scan * 1e3
+        scan * 1e3,
+        batched * 1e3
     );
 }
 

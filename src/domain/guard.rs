@@ -2,6 +2,7 @@
 //! scores, the thresholds every signal is judged against, and the
 //! per-descriptor training ranges; plus its out-of-fold calibration.
 
+use std::ops::Range;
 use std::sync::Arc;
 
 use ndarray::{Array2, ArrayView1, ArrayView2, Axis};
@@ -120,43 +121,64 @@ impl DomainGuard {
         assert_eq!(x_raw.ncols(), d, "assess: raw rows have the wrong length");
         assert_eq!(x_std.nrows(), x_raw.nrows(), "assess: row counts differ");
         let (scores, residuals) = self.state.pca.scores_and_residuals(x_std);
-        let row = |best: &mut Vec<f64>, i: usize| {
-            let finite = x_std
-                .row(i)
-                .iter()
-                .chain(x_raw.row(i))
-                .all(|v| v.is_finite());
-            match knn::pad(scores.row(i)) {
-                Ok(point) if finite => {
-                    self.judge(&point, scores.row(i), residuals[i], x_raw.row(i), best)
-                }
-                _ => rules::unplaceable(),
-            }
+        // The rows in `rows`: one neighbour search for all their points
+        // (the scan shares each read of the training points between
+        // several queries), then each row judged.
+        let judge_rows = |rows: Range<usize>, scratch: &mut Vec<f64>| -> Vec<DomainSignals> {
+            let points: Vec<Option<knn::Point>> = rows
+                .clone()
+                .map(|i| {
+                    let finite = x_std
+                        .row(i)
+                        .iter()
+                        .chain(x_raw.row(i))
+                        .all(|v| v.is_finite());
+                    knn::pad(scores.row(i)).ok().filter(|_| finite)
+                })
+                .collect();
+            let placed: Vec<knn::Point> = points.iter().flatten().copied().collect();
+            let distances = self
+                .index
+                .fast_mean_distances(&placed, self.state.settings.k, scratch);
+            let mut next = 0;
+            rows.zip(&points)
+                .map(|(i, point)| match point {
+                    Some(_) => {
+                        // One distance per placed point, in their order.
+                        let d = distances[next];
+                        next += 1;
+                        self.judge(d, scores.row(i), residuals[i], x_raw.row(i))
+                    }
+                    None => rules::unplaceable(),
+                })
+                .collect()
         };
         // Rows are independent neighbour scans of a few microseconds each:
-        // a batch is shared between the cores, each worker reusing one
-        // scratch buffer; a handful of rows is not worth a thread hand-off.
-        if x_std.nrows() < PARALLEL_ROWS {
-            let mut best = Vec::new();
-            return (0..x_std.nrows()).map(|i| row(&mut best, i)).collect();
+        // a batch is shared between the cores in chunks, each worker
+        // reusing one scratch buffer; a handful of rows is not worth a
+        // thread hand-off.
+        let n = x_std.nrows();
+        if n < PARALLEL_ROWS {
+            return judge_rows(0..n, &mut Vec::new());
         }
-        (0..x_std.nrows())
+        let chunk = PARALLEL_ROWS / 2;
+        let judged: Vec<Vec<DomainSignals>> = (0..n.div_ceil(chunk))
             .into_par_iter()
-            .with_min_len(PARALLEL_ROWS / 2)
-            .map_init(Vec::new, row)
-            .collect()
+            .map_init(Vec::new, |scratch, c| {
+                judge_rows(c * chunk..n.min((c + 1) * chunk), scratch)
+            })
+            .collect();
+        judged.into_iter().flatten().collect()
     }
 
     fn judge(
         &self,
-        point: &knn::Point,
+        knn_distance: f64,
         scores: ArrayView1<f64>,
         residual: f64,
         raw: ArrayView1<f64>,
-        scratch: &mut Vec<f64>,
     ) -> DomainSignals {
         let s = &self.state;
-        let knn_distance = self.index.fast_mean_distance(point, s.settings.k, scratch);
         let measured = Measured {
             knn_distance,
             typicality: typicality(&s.loo_distances, knn_distance),

@@ -6,13 +6,14 @@
 //! 10 components, k = 5) the tree prunes little, because with n/32 leaves
 //! it splits on only the first log₂(n/32) ≈ 7 dimensions; measured on 1,000
 //! queries (`cargo bench --bench domain_conformal`), the scan below is
-//! about 1.5 times faster at 10 dimensions and 3 times at 16 (figures at
-//! [`SCAN_FROM_DIMS`]). The scan
+//! about twice as fast at 10 dimensions and four times at 16 (figures at
+//! [`SCAN_FROM_DIMS`]). A batch scans several queries a pass over the
+//! training points, which shares each load between them. The scan
 //! computes every squared distance by exactly the expression kiddo uses
 //! (Σⱼ (tⱼ − qⱼ)² in dimension order, no fused multiply-add), keeps the k
 //! smallest, and sums their square roots nearest first as the tree path
 //! does, so the k-NN distance signal is the same to the last bit; the test
-//! `scan_equals_the_tree_to_the_bit` checks it. Ties cannot change that
+//! `every_scan_kernel_equals_the_tree_to_the_bit` checks it. Ties cannot change that
 //! sum: tied neighbours have equal distances, whichever of them is kept.
 //!
 //! Why the immutable tree: the mutable one panics when more than a bucket's
@@ -132,10 +133,13 @@ trees!(
 
 /// From this many dimensions on, batch queries scan instead of using the
 /// tree. Measured on 1,000 queries among 5,000 uniform points (k = 5,
-/// 2-core machine, quiet; the "5-NN distance" lines of
-/// `cargo bench --bench domain_conformal`), tree against scan per query:
-/// 3 dims 0.8 against 5.0 µs, 8 dims 6.7 against 8.5 µs, 10 dims 15.5
-/// against 10.6 µs, 16 dims 53 against 15 µs. On descriptors driven by 8
+/// 2-core Intel Xeon machine with AVX-512, quiet, 2026-12-02; the "5-NN
+/// distance" lines of `cargo bench --bench domain_conformal`), tree against
+/// one-query scan against batched scan, per query: 3 dims 0.6, 3.7 and
+/// 3.3 µs; 8 dims 4.7, 5.9 and 4.8 µs; 10 dims 11.2, 6.9 and 5.5 µs;
+/// 16 dims 31.3, 9.8 and 7.3 µs. With only AVX (the AVX-512 kernel
+/// switched off on the same machine) the batched scan took 7.2 µs at 10
+/// dims against 9.0 µs one query at a time. On descriptors driven by 8
 /// or 3 latent factors (8 or 3 components, below the threshold) the tree's
 /// lead over the scan is larger than on uniform points.
 /// Beyond about 10 dimensions k-d trees prune poorly in general (common
@@ -143,8 +147,8 @@ trees!(
 const SCAN_FROM_DIMS: usize = 10;
 
 /// Training points per block of the scan: their running squared distances
-/// stay in registers (four 4-wide AVX registers) while the block's
-/// coordinates stream past.
+/// stay in registers (four 4-wide AVX or two 8-wide AVX-512 registers per
+/// query) while the block's coordinates stream past.
 const SCAN_LANES: usize = 16;
 
 /// The training points of one guard, searchable by distance.
@@ -188,32 +192,60 @@ impl NeighbourIndex {
         })
     }
 
-    /// Mean Euclidean distance from `point` to its `k` nearest training
+    /// Mean Euclidean distance from each point to its `k` nearest training
     /// rows by whichever search is faster at this many dimensions (see
-    /// [`SCAN_FROM_DIMS`]); both give the same bits.
-    pub fn fast_mean_distance(&self, point: &Point, k: usize, scratch: &mut Vec<f64>) -> f64 {
+    /// [`SCAN_FROM_DIMS`]); both give the same bits. `scratch` is reused
+    /// across calls so a batch allocates nothing per candidate.
+    pub fn fast_mean_distances(
+        &self,
+        points: &[Point],
+        k: usize,
+        scratch: &mut Vec<f64>,
+    ) -> Vec<f64> {
         if self.dims >= SCAN_FROM_DIMS {
-            self.scan_mean_distance(point, k, scratch)
+            self.scan_mean_distances(points, k, scratch)
         } else {
-            self.mean_distance(point, k)
+            points.iter().map(|p| self.mean_distance(p, k)).collect()
         }
     }
 
     /// Mean Euclidean distance from `point` to its `k` nearest training
     /// rows, by scanning every row: the same value as
     /// [`NeighbourIndex::mean_distance`], bit for bit (see the module
-    /// documentation). `best` is scratch space, reused across calls so a
-    /// batch allocates nothing per candidate.
-    pub fn scan_mean_distance(&self, point: &Point, k: usize, best: &mut Vec<f64>) -> f64 {
+    /// documentation).
+    pub fn scan_mean_distance(&self, point: &Point, k: usize, scratch: &mut Vec<f64>) -> f64 {
+        self.scan_mean_distances(std::slice::from_ref(point), k, scratch)[0]
+    }
+
+    /// [`NeighbourIndex::scan_mean_distance`] of each point, several
+    /// points a pass over the training rows where the CPU allows.
+    pub fn scan_mean_distances(
+        &self,
+        points: &[Point],
+        k: usize,
+        scratch: &mut Vec<f64>,
+    ) -> Vec<f64> {
+        self.scan_mean_distances_by(Kernel::detect(), points, k, scratch)
+    }
+
+    fn scan_mean_distances_by(
+        &self,
+        kernel: Kernel,
+        points: &[Point],
+        k: usize,
+        best: &mut Vec<f64>,
+    ) -> Vec<f64> {
         let k = k.min(self.n);
         if k == 0 {
-            return f64::NAN;
+            return vec![f64::NAN; points.len()];
         }
-        best.clear();
-        best.resize(k, f64::INFINITY);
-        scan(&self.blocks, &point[..self.dims], best);
-        // Ascending, as the tree returns them; the sum runs in that order.
-        best.iter().map(|d| d.max(0.0).sqrt()).sum::<f64>() / k as f64
+        best.resize(points.len() * k, f64::INFINITY);
+        kernel.scan(&self.blocks, self.dims, points, k, best);
+        // Each run ascending, as the tree returns them; the sum runs in
+        // that order.
+        best.chunks_exact(k)
+            .map(|run| run.iter().map(|d| d.max(0.0).sqrt()).sum::<f64>() / k as f64)
+            .collect()
     }
 
     /// The `k` nearest training rows (fewer if the tree holds fewer) as
@@ -248,50 +280,187 @@ impl NeighbourIndex {
     }
 }
 
-/// Keeps in `best` (ascending, full length) the smallest squared distances
-/// from `query` to every point of `blocks`.
-fn scan(blocks: &[[f64; SCAN_LANES]], query: &[f64], best: &mut [f64]) {
+/// The scan's kernels, each keeping in `best` (ascending, full length) the
+/// smallest squared distances from a query to every point of the blocks.
+/// Every kernel performs the same IEEE operations on each point in the same
+/// order, so all give the same bits; the test
+/// `every_scan_kernel_equals_the_tree_to_the_bit` checks each one this CPU
+/// runs.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum Kernel {
     #[cfg(target_arch = "x86_64")]
-    if std::arch::is_x86_feature_detected!("avx") {
-        // SAFETY: the CPU supports AVX, checked just above.
-        unsafe { scan_avx(blocks, query, best) };
-        return;
-    }
-    scan_portable(blocks, query, best);
+    Avx512,
+    #[cfg(target_arch = "x86_64")]
+    Avx,
+    Portable,
 }
 
-/// The scan compiled for AVX: the same operations four lanes at a time.
-/// Only AVX, not FMA: a fused multiply-add rounds once where kiddo rounds
-/// twice, and the distances must be kiddo's to the bit.
+impl Kernel {
+    const WIDEST_FIRST: &[Kernel] = &[
+        #[cfg(target_arch = "x86_64")]
+        Kernel::Avx512,
+        #[cfg(target_arch = "x86_64")]
+        Kernel::Avx,
+        Kernel::Portable,
+    ];
+
+    /// The widest kernel this CPU supports (the standard library caches
+    /// the feature checks, so this is cheap per query).
+    fn detect() -> Kernel {
+        Kernel::WIDEST_FIRST
+            .iter()
+            .copied()
+            .find(|k| k.supported())
+            .unwrap_or(Kernel::Portable)
+    }
+
+    fn supported(self) -> bool {
+        match self {
+            #[cfg(target_arch = "x86_64")]
+            Kernel::Avx512 => std::arch::is_x86_feature_detected!("avx512f"),
+            #[cfg(target_arch = "x86_64")]
+            Kernel::Avx => std::arch::is_x86_feature_detected!("avx"),
+            Kernel::Portable => true,
+        }
+    }
+
+    /// Fills `best` with `k` ascending squared distances per query, query
+    /// after query: the `k` smallest from each query to every point of the
+    /// blocks.
+    fn scan(
+        self,
+        blocks: &[[f64; SCAN_LANES]],
+        dims: usize,
+        queries: &[Point],
+        k: usize,
+        best: &mut [f64],
+    ) {
+        assert_eq!(best.len(), queries.len() * k, "scan: one k-run per query");
+        best.fill(f64::INFINITY);
+        match self {
+            #[cfg(target_arch = "x86_64")]
+            Kernel::Avx512 => {
+                assert!(self.supported(), "AVX-512F scan on a CPU without it");
+                // SAFETY: the CPU supports AVX-512F, checked just above.
+                unsafe { scan_avx512(blocks, dims, queries, k, best) }
+            }
+            #[cfg(target_arch = "x86_64")]
+            Kernel::Avx => {
+                assert!(self.supported(), "AVX scan on a CPU without it");
+                // SAFETY: the CPU supports AVX, checked just above.
+                unsafe { scan_avx(blocks, dims, queries, k, best) }
+            }
+            Kernel::Portable => scan_queries::<1>(blocks, dims, queries, k, best),
+        }
+    }
+}
+
+/// The scan compiled for AVX-512F, four queries a pass: four queries'
+/// running sums (eight 8-wide registers) share each load of a block, and
+/// the loop does a third fewer loads and loop steps per distance than with
+/// one query. Eight queries a pass ran three times slower (the sums no
+/// longer fit in registers), two slightly slower than four. Only AVX-512F, not FMA: a fused
+/// multiply-add rounds once where kiddo rounds twice, and the distances
+/// must be kiddo's to the bit.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+fn scan_avx512(
+    blocks: &[[f64; SCAN_LANES]],
+    dims: usize,
+    queries: &[Point],
+    k: usize,
+    best: &mut [f64],
+) {
+    scan_queries::<QUERIES_AVX512>(blocks, dims, queries, k, best);
+}
+
+/// The scan compiled for AVX, two queries a pass (eight 4-wide running
+/// sums; three were no faster). Only AVX, not FMA, for the reason given at [`scan_avx512`].
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx")]
-fn scan_avx(blocks: &[[f64; SCAN_LANES]], query: &[f64], best: &mut [f64]) {
-    scan_portable(blocks, query, best);
+fn scan_avx(
+    blocks: &[[f64; SCAN_LANES]],
+    dims: usize,
+    queries: &[Point],
+    k: usize,
+    best: &mut [f64],
+) {
+    scan_queries::<QUERIES_AVX>(blocks, dims, queries, k, best);
 }
 
+const QUERIES_AVX512: usize = 4;
+const QUERIES_AVX: usize = 2;
+
+/// The scan, `Q` queries a pass over the blocks, then the queries left
+/// over one a pass. A pair's squared distance is the same operations
+/// whichever pass computes it.
 #[inline(always)]
-fn scan_portable(blocks: &[[f64; SCAN_LANES]], query: &[f64], best: &mut [f64]) {
-    let dims = query.len();
-    let last = best.len() - 1;
+fn scan_queries<const Q: usize>(
+    blocks: &[[f64; SCAN_LANES]],
+    dims: usize,
+    queries: &[Point],
+    k: usize,
+    best: &mut [f64],
+) {
+    let (groups, rest) = queries.as_chunks::<Q>();
+    let (best_grouped, best_rest) = best.split_at_mut(groups.len() * Q * k);
+    for (group, best) in groups.iter().zip(best_grouped.chunks_exact_mut(Q * k)) {
+        scan_pass::<Q>(blocks, dims, group, k, best);
+    }
+    for (query, best) in rest.iter().zip(best_rest.chunks_exact_mut(k)) {
+        scan_pass::<1>(blocks, dims, std::array::from_ref(query), k, best);
+    }
+}
+
+/// One pass over the blocks for `Q` queries, each keeping its `k` smallest
+/// in its own run of `best`.
+#[inline(always)]
+fn scan_pass<const Q: usize>(
+    blocks: &[[f64; SCAN_LANES]],
+    dims: usize,
+    queries: &[Point; Q],
+    k: usize,
+    best: &mut [f64],
+) {
     for block in blocks.chunks_exact(dims) {
-        let mut acc = [0.0f64; SCAN_LANES];
-        for (coords, &q) in block.iter().zip(query) {
-            for (a, &t) in acc.iter_mut().zip(coords) {
-                // kiddo's SquaredEuclidean: (a − b)², added in dimension order.
-                let d = t - q;
-                *a += d * d;
+        let mut acc = [[0.0f64; SCAN_LANES]; Q];
+        for (j, coords) in block.iter().enumerate() {
+            for (acc, query) in acc.iter_mut().zip(queries) {
+                add_squares(acc, coords, query[j]);
             }
         }
-        // Most blocks hold no new neighbour: one pass of comparisons.
-        if !acc.iter().any(|&v| v < best[last]) {
-            continue;
+        for (acc, best) in acc.iter().zip(best.chunks_exact_mut(k)) {
+            keep_smallest(acc, best);
         }
-        for &v in &acc {
-            if v < best[last] {
-                let at = best.partition_point(|&b| b <= v);
-                best.copy_within(at..last, at + 1);
-                best[at] = v;
-            }
+    }
+}
+
+/// One dimension's term of every lane's squared distance.
+#[inline(always)]
+fn add_squares(acc: &mut [f64; SCAN_LANES], coords: &[f64; SCAN_LANES], q: f64) {
+    for (a, &t) in acc.iter_mut().zip(coords) {
+        // kiddo's SquaredEuclidean: (a − b)², added in dimension order.
+        let d = t - q;
+        *a += d * d;
+    }
+}
+
+/// Merges a block's squared distances into `best` (ascending, full length).
+#[inline(always)]
+fn keep_smallest(acc: &[f64; SCAN_LANES], best: &mut [f64]) {
+    let last = best.len() - 1;
+    // Most blocks hold no new neighbour: one pass of comparisons, without
+    // the early exit of `any`, so it compiles to a few vector compares
+    // rather than a branch per lane.
+    let bound = best[last];
+    if !acc.iter().fold(false, |found, &v| found | (v < bound)) {
+        return;
+    }
+    for &v in acc {
+        if v < best[last] {
+            let at = best.partition_point(|&b| b <= v);
+            best.copy_within(at..last, at + 1);
+            best[at] = v;
         }
     }
 }
@@ -316,7 +485,14 @@ mod tests {
     /// training points (ties at distance 0) and coordinates on a coarse
     /// grid (many exact ties at the k-th distance).
     #[test]
-    fn scan_equals_the_tree_to_the_bit() {
+    fn every_scan_kernel_equals_the_tree_to_the_bit() {
+        let kernels: Vec<Kernel> = Kernel::WIDEST_FIRST
+            .iter()
+            .copied()
+            .filter(|k| k.supported())
+            .collect();
+        // Say which ran: a kernel this CPU lacks goes untested here.
+        eprintln!("scan kernels checked on this CPU: {kernels:?}");
         let mut rng = Xoshiro256PlusPlus::seed_from_u64(11);
         let mut best = Vec::new();
         for case in 0..120 {
@@ -331,22 +507,35 @@ mod tests {
             let copies = base.select(Axis(0), &vec![0; rng.gen_range(0..40)]);
             let train = concatenate(Axis(0), &[base.view(), copies.view()]).unwrap();
             let index = NeighbourIndex::build(train.view()).unwrap();
-            for q in 0..30 {
-                let point = if q % 5 == 0 {
-                    pad(train.row(rng.gen_range(0..train.nrows()))).unwrap()
-                } else {
-                    let row: Vec<f64> = (0..dims).map(|_| draw(&mut rng)).collect();
-                    pad(ndarray::ArrayView1::from(&row)).unwrap()
-                };
-                for k in [1, 3, 5, 10, 400] {
-                    let tree = index.mean_distance(&point, k);
-                    let scan = index.scan_mean_distance(&point, k, &mut best);
-                    assert_eq!(
-                        tree.to_bits(),
-                        scan.to_bits(),
-                        "case {case} (n {}, dims {dims}), query {q}, k {k}: tree {tree}, scan {scan}",
-                        train.nrows()
-                    );
+            let queries: Vec<Point> = (0..30)
+                .map(|q| {
+                    if q % 5 == 0 {
+                        pad(train.row(rng.gen_range(0..train.nrows()))).unwrap()
+                    } else {
+                        let row: Vec<f64> = (0..dims).map(|_| draw(&mut rng)).collect();
+                        pad(ndarray::ArrayView1::from(&row)).unwrap()
+                    }
+                })
+                .collect();
+            for k in [1, 3, 5, 10, 400] {
+                let tree: Vec<f64> = queries.iter().map(|q| index.mean_distance(q, k)).collect();
+                for &kernel in &kernels {
+                    // Whole batches and short ones, so every kernel's
+                    // several-query passes and its one-query remainder run.
+                    for batch in [30, 29, 3, 1] {
+                        let scan =
+                            index.scan_mean_distances_by(kernel, &queries[..batch], k, &mut best);
+                        assert_eq!(scan.len(), batch, "one distance per query");
+                        for (q, (t, s)) in tree.iter().zip(&scan).enumerate() {
+                            assert_eq!(
+                                t.to_bits(),
+                                s.to_bits(),
+                                "case {case} (n {}, dims {dims}), query {q} of {batch}, k {k}, \
+                                 {kernel:?}: tree {t}, scan {s}",
+                                train.nrows()
+                            );
+                        }
+                    }
                 }
             }
         }
