@@ -33,6 +33,9 @@ pub mod validate;
 pub mod pb {
     tonic::include_proto!("plumbline.v1");
 
+    mod candidate;
+    pub use candidate::Candidate;
+
     /// The encoded descriptor set, served by gRPC reflection.
     pub const FILE_DESCRIPTOR_SET: &[u8] =
         tonic::include_file_descriptor_set!("plumbline_descriptor");
