@@ -478,8 +478,10 @@ async fn reload(registry: &Arc<Registry>, force: bool) {
 }
 
 /// A runtime sized by `server.workers` (tokio would size it from the host's
-/// CPUs, not the container's limit).
+/// CPUs, not the container's limit), with the allocator set up for serving
+/// ([`memory::keep_batch_memory`]).
 pub fn build_runtime(settings: &Settings) -> std::io::Result<tokio::runtime::Runtime> {
+    memory::keep_batch_memory();
     tokio::runtime::Builder::new_multi_thread()
         .worker_threads(settings.server.workers.max(1))
         .thread_name("plumbline")
