@@ -355,13 +355,12 @@ impl Kernel {
     }
 }
 
-/// The scan compiled for AVX-512F, four queries a pass: four queries'
-/// running sums (eight 8-wide registers) share each load of a block, and
-/// the loop does a third fewer loads and loop steps per distance than with
-/// one query. Eight queries a pass ran three times slower (the sums no
-/// longer fit in registers), two slightly slower than four. Only AVX-512F, not FMA: a fused
-/// multiply-add rounds once where kiddo rounds twice, and the distances
-/// must be kiddo's to the bit.
+/// The scan compiled for AVX-512F, four queries a pass: their running sums
+/// (eight 8-wide registers) share each load of a block. Eight queries a
+/// pass ran three times slower (the sums no longer fit in registers), two
+/// slightly slower than four. Only AVX-512F, not FMA: a fused multiply-add
+/// rounds once where kiddo rounds twice, and the distances must be kiddo's
+/// to the bit.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
 fn scan_avx512(
@@ -375,7 +374,8 @@ fn scan_avx512(
 }
 
 /// The scan compiled for AVX, two queries a pass (eight 4-wide running
-/// sums; three were no faster). Only AVX, not FMA, for the reason given at [`scan_avx512`].
+/// sums; three were no faster). Only AVX, not FMA, for the reason given at
+/// [`scan_avx512`].
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx")]
 fn scan_avx(
