@@ -26,7 +26,9 @@ const MAP_FROM: usize = 32 << 20;
 /// to [`KEEP_FREED`] per arena stops that churn; the resident size then
 /// sits at the working set's peak instead of swinging below it. The trim
 /// after a model swap ([`release_after_swap`]) still returns everything
-/// free. Call once, before the runtime starts its threads.
+/// free. The settings are the whole process's and apply to arenas made
+/// before and after; the server sets them as it starts, after logging is
+/// up, so a refusal is seen.
 pub fn keep_batch_memory() {
     #[cfg(all(target_os = "linux", target_env = "gnu"))]
     {

@@ -155,6 +155,7 @@ pub async fn run_with_listeners(
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> Result<(), StartError> {
     settings.check()?;
+    memory::keep_batch_memory();
     let (rules, builder) = secured(&settings, &listener)?;
     // Collected always (it is cheap), served only on a metrics listener.
     let metrics = Arc::new(metrics::Metrics::new());
@@ -478,10 +479,8 @@ async fn reload(registry: &Arc<Registry>, force: bool) {
 }
 
 /// A runtime sized by `server.workers` (tokio would size it from the host's
-/// CPUs, not the container's limit), with the allocator set up for serving
-/// ([`memory::keep_batch_memory`]).
+/// CPUs, not the container's limit).
 pub fn build_runtime(settings: &Settings) -> std::io::Result<tokio::runtime::Runtime> {
-    memory::keep_batch_memory();
     tokio::runtime::Builder::new_multi_thread()
         .worker_threads(settings.server.workers.max(1))
         .thread_name("plumbline")
