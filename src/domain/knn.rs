@@ -13,8 +13,9 @@
 //! (Σⱼ (tⱼ − qⱼ)² in dimension order, no fused multiply-add), keeps the k
 //! smallest, and sums their square roots nearest first as the tree path
 //! does, so the k-NN distance signal is the same to the last bit; the test
-//! `every_scan_kernel_equals_the_tree_to_the_bit` checks it. Ties cannot change that
-//! sum: tied neighbours have equal distances, whichever of them is kept.
+//! `every_scan_kernel_equals_the_tree_to_the_bit` checks it. Ties cannot
+//! change that sum: tied neighbours have equal distances, whichever of
+//! them is kept.
 //!
 //! Why the immutable tree: the mutable one panics when more than a bucket's
 //! worth of points share a coordinate, and descriptor tables often hold
