@@ -12,10 +12,13 @@
 //! - [`outcomes`]: lab results recorded against candidate records, with
 //!   their history, and the reads the outcome monitor needs;
 //! - [`cases`]: the analysts' review cases and their append-only history;
+//! - [`lookup`]: records found by the lab's own candidate id, through a
+//!   digest of each request's candidate ids rather than an index;
 //! - [`ids`]: time-ordered request ids and the record ids derived from them.
 
 pub mod cases;
 pub mod ids;
+pub mod lookup;
 pub mod outcomes;
 pub mod sqlite;
 pub mod writer;

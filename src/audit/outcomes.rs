@@ -7,6 +7,8 @@
 //! are rare and small, and WAL mode with a busy timeout serialises them
 //! against the group commits.
 
+use std::collections::HashMap;
+
 use rusqlite::{Connection, OptionalExtension, params};
 
 use super::sqlite::Migration;
@@ -35,6 +37,7 @@ pub const MIGRATION: Migration = Migration {
         -- and model look them up here.
         CREATE INDEX candidates_by_candidate ON candidates(candidate_id);
     ",
+    fill: None,
 };
 
 /// Which record a measured value belongs to.
@@ -135,8 +138,21 @@ pub fn record(
     caller: &Caller,
 ) -> Result<Vec<RowResult>, Error> {
     let tx = conn.transaction().map_err(write_err)?;
+    // Every row given by candidate id is looked up in one read of the
+    // model's digests, not one read per row.
+    let wanted: Vec<(String, String)> = rows
+        .iter()
+        .filter_map(|row| match &row.target {
+            Target::Candidate {
+                candidate_id,
+                model_id,
+            } => Some((candidate_id.clone(), model_id.clone())),
+            Target::Record(_) => None,
+        })
+        .collect();
+    let by_candidate = super::lookup::records_by_candidate(&tx, &wanted)?;
     let mut results = Vec::with_capacity(rows.len());
-    let mut seen: std::collections::HashMap<String, usize> = Default::default();
+    let mut seen: HashMap<String, usize> = HashMap::new();
     for (i, row) in rows.iter().enumerate() {
         if !row.observed.is_finite() {
             results.push(RowResult::Invalid {
@@ -144,7 +160,7 @@ pub fn record(
             });
             continue;
         }
-        let record_id = match resolve(&tx, &row.target)? {
+        let record_id = match resolve(&tx, &row.target, &by_candidate)? {
             Ok(id) => id,
             Err(r) => {
                 results.push(r);
@@ -227,7 +243,14 @@ fn insert(
     Ok(())
 }
 
-fn resolve(conn: &Connection, target: &Target) -> Result<Result<String, RowResult>, Error> {
+/// The record a row names: by record id, checked against the store, or by
+/// candidate id and model, from `by_candidate` (see
+/// [`super::lookup::records_by_candidate`]).
+fn resolve(
+    conn: &Connection,
+    target: &Target,
+    by_candidate: &HashMap<(String, String), Vec<String>>,
+) -> Result<Result<String, RowResult>, Error> {
     match target {
         Target::Record(id) => {
             let unknown = || RowResult::UnknownRecord {
@@ -250,26 +273,19 @@ fn resolve(conn: &Connection, target: &Target) -> Result<Result<String, RowResul
             candidate_id,
             model_id,
         } => {
-            let mut stmt = conn
-                .prepare_cached(
-                    "SELECT c.record_id FROM candidates c JOIN requests r USING (request_id)
-                     WHERE c.candidate_id = ?1 AND r.model_id = ?2 ORDER BY c.record_id",
-                )
-                .map_err(read_err)?;
-            let ids = stmt
-                .query_map(params![candidate_id, model_id], |r| r.get::<_, String>(0))
-                .map_err(read_err)?
-                .collect::<rusqlite::Result<Vec<_>>>()
-                .map_err(read_err)?;
-            Ok(match ids.len() {
-                0 => Err(RowResult::UnknownCandidate {
+            let ids = by_candidate
+                .get(&(candidate_id.clone(), model_id.clone()))
+                .map(Vec::as_slice)
+                .unwrap_or_default();
+            Ok(match ids {
+                [] => Err(RowResult::UnknownCandidate {
                     candidate_id: candidate_id.clone(),
                     model_id: model_id.clone(),
                 }),
-                1 => Ok(ids.into_iter().next().unwrap_or_default()),
+                [one] => Ok(one.clone()),
                 _ => Err(RowResult::Ambiguous {
                     candidate_id: candidate_id.clone(),
-                    record_ids: ids,
+                    record_ids: ids.to_vec(),
                 }),
             })
         }

@@ -17,6 +17,9 @@ use super::{
 pub struct Migration {
     pub name: &'static str,
     pub sql: &'static str,
+    /// Rows the step computes in Rust (SQL cannot), run after `sql` in the
+    /// same transaction.
+    pub fill: Option<fn(&Transaction<'_>) -> rusqlite::Result<()>>,
 }
 
 /// The schema, in order; `PRAGMA user_version` is the number applied. Add a
@@ -80,11 +83,13 @@ pub const MIGRATIONS: &[Migration] = &[
         ) STRICT;
         CREATE INDEX stream_ranks_by_stream ON stream_ranks(stream_id, rank);
     ",
+        fill: None,
     },
     super::outcomes::MIGRATION,
     Migration {
         name: "review cases and their decision history",
         sql: super::cases::MIGRATION_SQL,
+        fill: None,
     },
     Migration {
         name: "who settled a case or recorded an outcome",
@@ -95,8 +100,14 @@ pub const MIGRATIONS: &[Migration] = &[
         ALTER TABLE outcomes ADD COLUMN caller_peer TEXT;
         ALTER TABLE outcomes ADD COLUMN caller_identity TEXT;
     ",
+        fill: None,
     },
     CHECKS_AS_COMPARISONS,
+    Migration {
+        name: "candidate-id digests per request instead of an index on candidate ids",
+        sql: super::lookup::MIGRATION_SQL,
+        fill: Some(super::lookup::fill_existing),
+    },
 ];
 
 /// Rewrites the two CHECK constraints of `candidates` from `x IN (list)` to
@@ -124,6 +135,7 @@ pub const CHECKS_AS_COMPARISONS: Migration = Migration {
          WHERE type = 'table' AND name = 'candidates';
         PRAGMA writable_schema = OFF;
     ",
+    fill: None,
 };
 
 /// Opens (creating if needed) the database for writing and brings its
@@ -289,6 +301,9 @@ pub fn migrate(conn: &Connection, path: &Path) -> Result<(), Error> {
         };
         let tx = conn.unchecked_transaction().map_err(fail)?;
         tx.execute_batch(m.sql).map_err(fail)?;
+        if let Some(fill) = m.fill {
+            fill(&tx).map_err(fail)?;
+        }
         tx.pragma_update(None, "user_version", version as i64)
             .map_err(fail)?;
         tx.commit().map_err(fail)?;
@@ -333,6 +348,8 @@ pub fn write_entries(tx: &Transaction<'_>, entries: &[&Entry]) -> rusqlite::Resu
     let mut rank = tx.prepare_cached(
         "INSERT INTO stream_ranks (record_id, stream_id, rank) VALUES (?1, ?2, ?3)",
     )?;
+    let mut digest =
+        tx.prepare_cached("INSERT INTO candidate_digests (request_id, digest) VALUES (?1, ?2)")?;
     for e in entries {
         let r = &e.request;
         req.execute(params![
@@ -389,6 +406,12 @@ pub fn write_entries(tx: &Transaction<'_>, entries: &[&Entry]) -> rusqlite::Resu
                 c.reason,
                 c.descriptor_sha256,
                 blob,
+            ])?;
+        }
+        if !e.candidates.is_empty() {
+            digest.execute(params![
+                r.request_id,
+                super::lookup::digest_of(&e.candidates)
             ])?;
         }
         for sr in &e.stream_ranks {

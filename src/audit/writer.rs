@@ -379,7 +379,7 @@ fn checkpoint(conn: &Connection) -> Option<u64> {
 }
 
 #[cfg(test)]
-mod tests {
+pub(crate) mod tests {
     use super::*;
     use crate::audit::{
         AuditReader, CandidateRecord, CandidateStatus, Counts, Method, OutOfRangeRecord,
@@ -398,7 +398,9 @@ mod tests {
         }
     }
 
-    fn entry(ids: &RequestIds, n: usize) -> Entry {
+    /// A request of `n` candidates `c0` … of model `m`, half scored, half
+    /// rejected.
+    pub(crate) fn entry(ids: &RequestIds, n: usize) -> Entry {
         let (request_id, time_us) = ids.next();
         let candidates: Vec<CandidateRecord> = (0..n)
             .map(|i| {
