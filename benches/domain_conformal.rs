@@ -71,7 +71,7 @@ fn main() {
     for (n, factors) in [(2000, 8), (5000, 8), (5000, 3)] {
         guard_figures(n, 200, factors);
     }
-    for dims in [3, 8, 10, 16] {
+    for dims in [3, 8, 9, 10, 16] {
         scan_figures(5000, dims);
     }
     cvplus_figures();
@@ -147,7 +147,7 @@ fn scan_figures(n: usize, dims: usize) {
         })
         .collect();
     let index = domain::NeighbourIndex::build(train.view()).unwrap();
-    let mut best = Vec::new();
+    let mut best = domain::ScanScratch::default();
     for q in &queries {
         assert_eq!(
             index.mean_distance(q, 5).to_bits(),

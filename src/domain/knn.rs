@@ -6,13 +6,18 @@
 //! 10 components, k = 5) the tree prunes little, because with n/32 leaves
 //! it splits on only the first log₂(n/32) ≈ 7 dimensions; measured on 1,000
 //! queries (`cargo bench --bench domain_conformal`), the scan below is
-//! about twice as fast at 10 dimensions and four times at 16 (figures at
+//! about twice as fast at 10 dimensions and six times at 16 (figures at
 //! [`SCAN_FROM_DIMS`]). A batch scans several queries a pass over the
-//! training points, which shares each load between them. The scan
-//! computes every squared distance by exactly the expression kiddo uses
-//! (Σⱼ (tⱼ − qⱼ)² in dimension order, no fused multiply-add), keeps the k
-//! smallest, and sums their square roots nearest first as the tree path
-//! does, so the k-NN distance signal is the same to the last bit; the test
+//! training points, which shares each load between them.
+//!
+//! The scan first sieves in f32, twice the lanes of f64 a vector register,
+//! keeping as candidates the rows whose rough distance is within a proven
+//! error margin of the k-th smallest (the bound is derived at
+//! `NeighbourIndex::sieve_margin`). It then computes each candidate's
+//! squared distance by exactly the expression kiddo uses (Σⱼ (tⱼ − qⱼ)² in
+//! f64, dimension order, no fused multiply-add), keeps the k smallest, and
+//! sums their square roots nearest first as the tree path does, so the
+//! k-NN distance signal is the same to the last bit; the test
 //! `every_scan_kernel_equals_the_tree_to_the_bit` checks it. Ties cannot
 //! change that sum: tied neighbours have equal distances, whichever of
 //! them is kept.
@@ -133,24 +138,39 @@ trees!(
 );
 
 /// From this many dimensions on, batch queries scan instead of using the
-/// tree. Measured on 1,000 queries among 5,000 uniform points (k = 5,
-/// 2-core Intel Xeon machine with AVX-512, quiet, 2026-12-02; the "5-NN
-/// distance" lines of `cargo bench --bench domain_conformal`), tree against
-/// one-query scan against batched scan, per query: 3 dims 0.6, 3.7 and
-/// 3.3 µs; 8 dims 4.7, 5.9 and 4.8 µs; 10 dims 11.2, 6.9 and 5.5 µs;
-/// 16 dims 31.3, 9.8 and 7.3 µs. With only AVX (the AVX-512 kernel
-/// switched off on the same machine) the batched scan took 7.2 µs at 10
-/// dims against 9.0 µs one query at a time. On descriptors driven by 8
-/// or 3 latent factors (8 or 3 components, below the threshold) the tree's
-/// lead over the scan is larger than on uniform points.
-/// Beyond about 10 dimensions k-d trees prune poorly in general (common
-/// practice).
+/// tree. Measured on 1,000 queries among 5,000 uniform points (k = 5; the
+/// "5-NN distance" lines of `cargo bench --bench domain_conformal`), tree
+/// against one-query scan against batched scan, per query:
+///
+/// - f32 sieve, 2-core AMD EPYC with AVX but not AVX-512, 2026-12-03,
+///   host fairly busy (load 1.8): 3 dims 1.1, 5.9 and 6.1 µs; 8 dims 9.3,
+///   8.2 and 8.2 µs; 9 dims 15.3, 8.5 and 7.9 µs; 10 dims 18.5, 9.5 and
+///   8.3 µs; 16 dims 81.5, 12.6 and 8.4 µs. On the same machine the f64
+///   scan this replaced took 14.1 µs batched at 10 dims, 16.6 µs at 16.
+/// - The f64 scan, 2-core Intel Xeon with AVX-512, quiet, 2026-12-02:
+///   3 dims 0.6, 3.7 and 3.3 µs; 8 dims 4.7, 5.9 and 4.8 µs; 10 dims
+///   11.2, 6.9 and 5.5 µs; 16 dims 31.3, 9.8 and 7.3 µs.
+///
+/// The scan now wins at 9 dimensions on uniform points too, but on
+/// descriptors driven by 8 or 3 latent factors the tree's lead over the
+/// scan is larger than on uniform points, so the threshold stays where
+/// k-d trees are known to prune poorly in general: beyond about 10
+/// dimensions (common practice).
 const SCAN_FROM_DIMS: usize = 10;
 
-/// Training points per block of the scan: their running squared distances
-/// stay in registers (four 4-wide AVX or two 8-wide AVX-512 registers per
-/// query) while the block's coordinates stream past.
-const SCAN_LANES: usize = 16;
+/// Training points per block of the sieve: their running f32 squared
+/// distances stay in registers (two 8-wide AVX or one 16-wide AVX-512
+/// register per query) while the block's coordinates stream past.
+const SIEVE_LANES: usize = 16;
+
+/// The sieve computes in f32 only where every coordinate, difference and
+/// square stays far inside f32's range (about 3.4e38): 16 squares of
+/// differences below 2e18 sum to under 7e37. A query or an index with a
+/// coordinate beyond this goes to the exact scan of every row.
+const SIEVE_MAX_ABS: f64 = 1e18;
+
+/// The unit roundoff of f32, 2⁻²⁴.
+const F32_UNIT_ROUNDOFF: f64 = 1.0 / 16_777_216.0;
 
 /// The training points of one guard, searchable by distance.
 /// Not `Clone` (kiddo's arena storage is not); guards share it by `Arc`.
@@ -159,11 +179,36 @@ pub struct NeighbourIndex {
     tree: Tree,
     n: usize,
     dims: usize,
-    /// The points again, for the scan, in blocks of [`SCAN_LANES`] points:
+    /// The points again, row after row (`rows[i * dims + j]`), for the
+    /// scan's exact distances.
+    rows: Vec<f64>,
+    /// The points rounded to f32, in blocks of [`SIEVE_LANES`] points:
     /// `blocks[b * dims + j]` holds coordinate j of points
-    /// b·SCAN_LANES .. (b + 1)·SCAN_LANES. The last block is padded with
-    /// +∞, whose distance +∞ is never kept before a finite one.
-    blocks: Vec<[f64; SCAN_LANES]>,
+    /// b·SIEVE_LANES .. (b + 1)·SIEVE_LANES. The last block is padded with
+    /// +∞, whose distance +∞ is never a candidate once k points are seen.
+    blocks: Vec<[f32; SIEVE_LANES]>,
+    /// The largest squared norm of a training point: the sieve's error
+    /// bound grows with it.
+    max_norm2: f64,
+    /// Every training coordinate is within [`SIEVE_MAX_ABS`].
+    sieve_fits: bool,
+}
+
+/// Buffers a scan reuses from call to call, so a batch allocates nothing
+/// per candidate.
+#[derive(Debug, Default)]
+pub struct ScanScratch {
+    /// The k smallest exact squared distances of each query, run after run.
+    best: Vec<f64>,
+    /// The k smallest f32 squared distances of each sieved query.
+    rough: Vec<f32>,
+    /// The sieved queries rounded to f32.
+    queries: Vec<[f32; TREE_DIM]>,
+    /// Their error margins, and where each sits among the caller's points.
+    margins: Vec<f64>,
+    sieved: Vec<usize>,
+    /// Each sieved query's candidates: (row, f32 squared distance).
+    found: Vec<Vec<(u32, f32)>>,
 }
 
 impl NeighbourIndex {
@@ -176,32 +221,47 @@ impl NeighbourIndex {
             .map(pad)
             .collect::<Result<Vec<_>, _>>()?;
         let dims = scores.ncols();
-        let tree = Tree::build(&points, dims)?;
-        let n_blocks = points.len().div_ceil(SCAN_LANES);
-        let mut blocks = vec![[f64::INFINITY; SCAN_LANES]; n_blocks * dims];
-        for (i, point) in points.iter().enumerate() {
-            let (b, lane) = (i / SCAN_LANES, i % SCAN_LANES);
-            for (j, &v) in point[..dims].iter().enumerate() {
-                blocks[b * dims + j][lane] = v;
-            }
+        if u32::try_from(points.len()).is_err() {
+            return Err(TreeError::Construction {
+                rows: points.len(),
+                reason: format!("the scan numbers rows up to {}", u32::MAX),
+            });
         }
+        let tree = Tree::build(&points, dims)?;
+        let n_blocks = points.len().div_ceil(SIEVE_LANES);
+        let mut blocks = vec![[f32::INFINITY; SIEVE_LANES]; n_blocks * dims];
+        let mut rows = Vec::with_capacity(points.len() * dims);
+        for (i, point) in points.iter().enumerate() {
+            let (b, lane) = (i / SIEVE_LANES, i % SIEVE_LANES);
+            for (j, &v) in point[..dims].iter().enumerate() {
+                blocks[b * dims + j][lane] = v as f32;
+            }
+            rows.extend_from_slice(&point[..dims]);
+        }
+        let max_norm2 = points
+            .iter()
+            .map(|p| p[..dims].iter().map(|v| v * v).sum::<f64>())
+            .fold(0.0, f64::max);
+        let sieve_fits = rows.iter().all(|v| v.abs() <= SIEVE_MAX_ABS);
         Ok(NeighbourIndex {
             tree,
             n: points.len(),
             dims,
+            rows,
             blocks,
+            max_norm2,
+            sieve_fits,
         })
     }
 
     /// Mean Euclidean distance from each point to its `k` nearest training
     /// rows by whichever search is faster at this many dimensions (see
-    /// [`SCAN_FROM_DIMS`]); both give the same bits. `scratch` is reused
-    /// across calls so a batch allocates nothing per candidate.
+    /// [`SCAN_FROM_DIMS`]); both give the same bits.
     pub fn fast_mean_distances(
         &self,
         points: &[Point],
         k: usize,
-        scratch: &mut Vec<f64>,
+        scratch: &mut ScanScratch,
     ) -> Vec<f64> {
         if self.dims >= SCAN_FROM_DIMS {
             self.scan_mean_distances(points, k, scratch)
@@ -214,7 +274,7 @@ impl NeighbourIndex {
     /// rows, by scanning every row: the same value as
     /// [`NeighbourIndex::mean_distance`], bit for bit (see the module
     /// documentation).
-    pub fn scan_mean_distance(&self, point: &Point, k: usize, scratch: &mut Vec<f64>) -> f64 {
+    pub fn scan_mean_distance(&self, point: &Point, k: usize, scratch: &mut ScanScratch) -> f64 {
         self.scan_mean_distances(std::slice::from_ref(point), k, scratch)[0]
     }
 
@@ -224,29 +284,135 @@ impl NeighbourIndex {
         &self,
         points: &[Point],
         k: usize,
-        scratch: &mut Vec<f64>,
+        scratch: &mut ScanScratch,
     ) -> Vec<f64> {
         self.scan_mean_distances_by(Kernel::detect(), points, k, scratch)
     }
 
+    /// The scan in two steps. The sieve computes every squared distance in
+    /// f32, where a vector register holds twice as many lanes, and keeps
+    /// as candidates the rows within a proven error margin of its k-th
+    /// smallest. The exact step computes each candidate's distance in f64
+    /// as kiddo does and keeps the k smallest. Every row the exact k
+    /// smallest could come from is a candidate (see [`Self::sieve_margin`]),
+    /// so the result is the exact one whatever the f32 rounding did.
     fn scan_mean_distances_by(
         &self,
         kernel: Kernel,
         points: &[Point],
         k: usize,
-        best: &mut Vec<f64>,
+        scratch: &mut ScanScratch,
     ) -> Vec<f64> {
         let k = k.min(self.n);
         if k == 0 {
             return vec![f64::NAN; points.len()];
         }
+        let ScanScratch {
+            best,
+            rough,
+            queries,
+            margins,
+            sieved,
+            found,
+        } = scratch;
+        best.clear();
         best.resize(points.len() * k, f64::INFINITY);
-        kernel.scan(&self.blocks, self.dims, points, k, best);
+        queries.clear();
+        margins.clear();
+        sieved.clear();
+        for (at, point) in points.iter().enumerate() {
+            let point = &point[..self.dims];
+            if self.sieve_fits && point.iter().all(|v| v.abs() <= SIEVE_MAX_ABS) {
+                queries.push(std::array::from_fn(|j| {
+                    point.get(j).map_or(0.0, |&v| v as f32)
+                }));
+                margins.push(self.sieve_margin(point));
+                sieved.push(at);
+            }
+        }
+        if found.len() < sieved.len() {
+            found.resize_with(sieved.len(), Vec::new);
+        }
+        found.iter_mut().for_each(Vec::clear);
+        rough.clear();
+        rough.resize(sieved.len() * k, f32::INFINITY);
+        let sieve = Sieve {
+            blocks: &self.blocks,
+            dims: self.dims,
+            n: self.n,
+            k,
+        };
+        kernel.sieve(&sieve, queries, margins, rough, &mut found[..sieved.len()]);
+
+        let mut next = sieved.iter().enumerate().peekable();
+        for (at, (point, run)) in points.iter().zip(best.chunks_exact_mut(k)).enumerate() {
+            let sieved_here = next.next_if(|&(_, &s)| s == at);
+            // The k-th smallest f32 distance plus the margin bounds the f32
+            // distance of every row that can be among the exact k nearest.
+            let limit = sieved_here.map(|(s, _)| rough[s * k + k - 1] as f64 + margins[s]);
+            match (sieved_here, limit) {
+                (Some((s, _)), Some(limit)) if limit.is_finite() => {
+                    for &(row, _) in found[s].iter().filter(|&&(_, d)| d as f64 <= limit) {
+                        keep_if_smaller(run, self.squared_distance(row as usize, point));
+                    }
+                }
+                _ => {
+                    for row in 0..self.n {
+                        keep_if_smaller(run, self.squared_distance(row, point));
+                    }
+                }
+            }
+        }
         // Each run ascending, as the tree returns them; the sum runs in
         // that order.
         best.chunks_exact(k)
             .map(|run| run.iter().map(|d| d.max(0.0).sqrt()).sum::<f64>() / k as f64)
             .collect()
+    }
+
+    /// The squared distance from training row `row` to `point` by exactly
+    /// kiddo's `SquaredEuclidean`: Σⱼ (tⱼ − qⱼ)² in dimension order, each
+    /// square and sum rounded on its own (no fused multiply-add).
+    fn squared_distance(&self, row: usize, point: &Point) -> f64 {
+        let row = &self.rows[row * self.dims..(row + 1) * self.dims];
+        row.iter().zip(point).fold(0.0, |sum, (&t, &q)| {
+            let d = t - q;
+            sum + d * d
+        })
+    }
+
+    /// A bound on |d̃ − d|, where d is a squared distance from the query
+    /// `q` to any training point t and d̃ the sieve's f32 value of it.
+    ///
+    /// The bound (standard floating-point error analysis, as in Higham,
+    /// *Accuracy and Stability of Numerical Algorithms*, 2nd ed., §2.2 and
+    /// §3.1, with u = 2⁻²⁴ the unit roundoff of f32): rounding tⱼ and qⱼ
+    /// to f32 and subtracting leaves the difference aⱼ = tⱼ − qⱼ off by at
+    /// most eⱼ ≤ 2u·sⱼ·(1 + u), sⱼ = |tⱼ| + |qⱼ|; its square is then off
+    /// by at most eⱼ(2sⱼ + eⱼ) ≤ 4.01u·sⱼ²; squaring and summing p terms
+    /// in f32 adds at most γₚ₊₁·Σ ãⱼ² ≤ 1.01(p + 1)u·Σ sⱼ². So
+    /// |d̃ − d| ≤ (p + 6)u·Σ sⱼ² ≤ 2(p + 6)u(‖t‖² + ‖q‖²). Below f32's
+    /// smallest normal number the relative bounds fail; each of the p
+    /// terms then loses less than that number, which the last term adds.
+    /// The test `the_sieve_error_stays_within_its_proven_bound` checks
+    /// the bound against f64 arithmetic.
+    fn sieve_error_bound(&self, q: &[f64]) -> f64 {
+        let q_norm2: f64 = q.iter().map(|v| v * v).sum();
+        let p = self.dims as f64;
+        2.0 * (p + 6.0) * F32_UNIT_ROUNDOFF * (self.max_norm2 + q_norm2)
+            + p * f64::from(f32::MIN_POSITIVE)
+    }
+
+    /// How far above the k-th smallest f32 distance a row stays a
+    /// candidate: twice the error bound is enough, and twice that again
+    /// is kept for safety (a wider margin only costs a few more exact
+    /// distances).
+    ///
+    /// Why twice the bound: the k rows with the smallest d̃ all have
+    /// d ≤ d̃ₖ + bound, so the exact k-th smallest dₖ is at most that, and
+    /// every row with d ≤ dₖ has d̃ ≤ d + bound ≤ d̃ₖ + 2·bound.
+    fn sieve_margin(&self, q: &[f64]) -> f64 {
+        4.0 * self.sieve_error_bound(q)
     }
 
     /// The `k` nearest training rows (fewer if the tree holds fewer) as
@@ -281,10 +447,32 @@ impl NeighbourIndex {
     }
 }
 
-/// The scan's kernels, each keeping in `best` (ascending, full length) the
-/// smallest squared distances from a query to every point of the blocks.
-/// Every kernel performs the same IEEE operations on each point in the same
-/// order, so all give the same bits; the test
+/// Inserts `v` into `best` (ascending, full length) if it is smaller than
+/// the largest there, dropping that one.
+#[inline(always)]
+fn keep_if_smaller<T: PartialOrd + Copy>(best: &mut [T], v: T) {
+    let last = best.len() - 1;
+    if v < best[last] {
+        let at = best.partition_point(|&b| b <= v);
+        best.copy_within(at..last, at + 1);
+        best[at] = v;
+    }
+}
+
+/// What the sieve reads: the index's f32 blocks and the run length.
+struct Sieve<'a> {
+    blocks: &'a [[f32; SIEVE_LANES]],
+    dims: usize,
+    n: usize,
+    k: usize,
+}
+
+/// The sieve's kernels. Each keeps, per query, the `k` smallest f32
+/// squared distances in its run of `rough` and as candidates every row
+/// whose f32 distance was within the query's margin of the k-th smallest
+/// seen so far. Kernels may round differently from each other (the
+/// margin covers any order of the sums); the exact step after them makes
+/// the result the same bits whichever ran, and the test
 /// `every_scan_kernel_equals_the_tree_to_the_bit` checks each one this CPU
 /// runs.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -325,145 +513,169 @@ impl Kernel {
         }
     }
 
-    /// Fills `best` with `k` ascending squared distances per query, query
-    /// after query: the `k` smallest from each query to every point of the
-    /// blocks.
-    fn scan(
+    fn sieve(
         self,
-        blocks: &[[f64; SCAN_LANES]],
-        dims: usize,
-        queries: &[Point],
-        k: usize,
-        best: &mut [f64],
+        sieve: &Sieve,
+        queries: &[[f32; TREE_DIM]],
+        margins: &[f64],
+        rough: &mut [f32],
+        found: &mut [Vec<(u32, f32)>],
     ) {
-        assert_eq!(best.len(), queries.len() * k, "scan: one k-run per query");
-        best.fill(f64::INFINITY);
+        assert_eq!(
+            rough.len(),
+            queries.len() * sieve.k,
+            "sieve: one k-run per query"
+        );
+        assert_eq!(
+            found.len(),
+            queries.len(),
+            "sieve: one candidate list per query"
+        );
+        assert_eq!(margins.len(), queries.len(), "sieve: one margin per query");
         match self {
             #[cfg(target_arch = "x86_64")]
             Kernel::Avx512 => {
-                assert!(self.supported(), "AVX-512F scan on a CPU without it");
+                assert!(self.supported(), "AVX-512F sieve on a CPU without it");
                 // SAFETY: the CPU supports AVX-512F, checked just above.
-                unsafe { scan_avx512(blocks, dims, queries, k, best) }
+                unsafe { sieve_avx512(sieve, queries, margins, rough, found) }
             }
             #[cfg(target_arch = "x86_64")]
             Kernel::Avx => {
-                assert!(self.supported(), "AVX scan on a CPU without it");
+                assert!(self.supported(), "AVX sieve on a CPU without it");
                 // SAFETY: the CPU supports AVX, checked just above.
-                unsafe { scan_avx(blocks, dims, queries, k, best) }
+                unsafe { sieve_avx(sieve, queries, margins, rough, found) }
             }
-            Kernel::Portable => scan_queries::<1>(blocks, dims, queries, k, best),
+            Kernel::Portable => {
+                sieve_queries::<QUERIES_PORTABLE>(sieve, queries, margins, rough, found)
+            }
         }
     }
 }
 
-/// The scan compiled for AVX-512F, four queries a pass: their running sums
-/// (eight 8-wide registers) share each load of a block. Eight queries a
-/// pass ran three times slower (the sums no longer fit in registers), two
-/// slightly slower than four. Only AVX-512F, not FMA: a fused multiply-add
-/// rounds once where kiddo rounds twice, and the distances must be kiddo's
-/// to the bit.
+/// The sieve compiled for AVX-512F, eight queries a pass: one 16-wide
+/// register of running sums each, the register count at which the f64
+/// scan this replaced ran fastest (four queries of two registers).
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
-fn scan_avx512(
-    blocks: &[[f64; SCAN_LANES]],
-    dims: usize,
-    queries: &[Point],
-    k: usize,
-    best: &mut [f64],
+fn sieve_avx512(
+    sieve: &Sieve,
+    queries: &[[f32; TREE_DIM]],
+    margins: &[f64],
+    rough: &mut [f32],
+    found: &mut [Vec<(u32, f32)>],
 ) {
-    scan_queries::<QUERIES_AVX512>(blocks, dims, queries, k, best);
+    sieve_queries::<QUERIES_AVX512>(sieve, queries, margins, rough, found);
 }
 
-/// The scan compiled for AVX, two queries a pass (eight 4-wide running
-/// sums; three were no faster). Only AVX, not FMA, for the reason given at
-/// [`scan_avx512`].
+/// The sieve compiled for AVX, four queries a pass (eight 8-wide running
+/// sums).
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx")]
-fn scan_avx(
-    blocks: &[[f64; SCAN_LANES]],
-    dims: usize,
-    queries: &[Point],
-    k: usize,
-    best: &mut [f64],
+fn sieve_avx(
+    sieve: &Sieve,
+    queries: &[[f32; TREE_DIM]],
+    margins: &[f64],
+    rough: &mut [f32],
+    found: &mut [Vec<(u32, f32)>],
 ) {
-    scan_queries::<QUERIES_AVX>(blocks, dims, queries, k, best);
+    sieve_queries::<QUERIES_AVX>(sieve, queries, margins, rough, found);
 }
 
-const QUERIES_AVX512: usize = 4;
-const QUERIES_AVX: usize = 2;
+const QUERIES_AVX512: usize = 8;
+const QUERIES_AVX: usize = 4;
+const QUERIES_PORTABLE: usize = 2;
 
-/// The scan, `Q` queries a pass over the blocks, then the queries left
-/// over one a pass. A pair's squared distance is the same operations
-/// whichever pass computes it.
+/// The sieve, `Q` queries a pass over the blocks, then the queries left
+/// over one a pass.
 #[inline(always)]
-fn scan_queries<const Q: usize>(
-    blocks: &[[f64; SCAN_LANES]],
-    dims: usize,
-    queries: &[Point],
-    k: usize,
-    best: &mut [f64],
+fn sieve_queries<const Q: usize>(
+    sieve: &Sieve,
+    queries: &[[f32; TREE_DIM]],
+    margins: &[f64],
+    rough: &mut [f32],
+    found: &mut [Vec<(u32, f32)>],
 ) {
+    let k = sieve.k;
     let (groups, rest) = queries.as_chunks::<Q>();
-    let (best_grouped, best_rest) = best.split_at_mut(groups.len() * Q * k);
-    for (group, best) in groups.iter().zip(best_grouped.chunks_exact_mut(Q * k)) {
-        scan_pass::<Q>(blocks, dims, group, k, best);
+    let grouped = groups.len() * Q;
+    let (rough_grouped, rough_rest) = rough.split_at_mut(grouped * k);
+    let (found_grouped, found_rest) = found.split_at_mut(grouped);
+    let (margins_grouped, margins_rest) = margins.split_at(grouped);
+    for (((group, rough), found), margins) in groups
+        .iter()
+        .zip(rough_grouped.chunks_exact_mut(Q * k))
+        .zip(found_grouped.chunks_exact_mut(Q))
+        .zip(margins_grouped.chunks_exact(Q))
+    {
+        sieve_pass::<Q>(sieve, group, margins, rough, found);
     }
-    for (query, best) in rest.iter().zip(best_rest.chunks_exact_mut(k)) {
-        scan_pass::<1>(blocks, dims, std::array::from_ref(query), k, best);
+    for (((query, rough), found), margin) in rest
+        .iter()
+        .zip(rough_rest.chunks_exact_mut(k))
+        .zip(found_rest.chunks_exact_mut(1))
+        .zip(margins_rest.chunks_exact(1))
+    {
+        sieve_pass::<1>(sieve, std::array::from_ref(query), margin, rough, found);
     }
 }
 
-/// One pass over the blocks for `Q` queries, each keeping its `k` smallest
-/// in its own run of `best`.
+/// One pass over the blocks for `Q` queries.
 #[inline(always)]
-fn scan_pass<const Q: usize>(
-    blocks: &[[f64; SCAN_LANES]],
-    dims: usize,
-    queries: &[Point; Q],
-    k: usize,
-    best: &mut [f64],
+fn sieve_pass<const Q: usize>(
+    sieve: &Sieve,
+    queries: &[[f32; TREE_DIM]; Q],
+    margins: &[f64],
+    rough: &mut [f32],
+    found: &mut [Vec<(u32, f32)>],
 ) {
-    for block in blocks.chunks_exact(dims) {
-        let mut acc = [[0.0f64; SCAN_LANES]; Q];
+    let k = sieve.k;
+    // Below this a block's f32 distance is a candidate: the k-th smallest
+    // so far plus the margin, rounded up. It only falls as the pass goes
+    // on, so every row within the final bound was taken when it was seen.
+    let mut bounds = [f32::INFINITY; Q];
+    for (b, block) in sieve.blocks.chunks_exact(sieve.dims).enumerate() {
+        let mut acc = [[0.0f32; SIEVE_LANES]; Q];
         for (j, coords) in block.iter().enumerate() {
             for (acc, query) in acc.iter_mut().zip(queries) {
                 add_squares(acc, coords, query[j]);
             }
         }
-        for (acc, best) in acc.iter().zip(best.chunks_exact_mut(k)) {
-            keep_smallest(acc, best);
+        for (q, acc) in acc.iter().enumerate() {
+            // Most blocks hold no candidate: one pass of comparisons,
+            // without the early exit of `any`, so it compiles to a few
+            // vector compares rather than a branch per lane.
+            let bound = bounds[q];
+            if !acc.iter().fold(false, |hit, &v| hit | (v <= bound)) {
+                continue;
+            }
+            let run = &mut rough[q * k..(q + 1) * k];
+            for (lane, &v) in acc.iter().enumerate() {
+                let row = b * SIEVE_LANES + lane;
+                if v <= bounds[q] && row < sieve.n {
+                    found[q].push((row as u32, v));
+                    if v < run[k - 1] {
+                        keep_if_smaller(run, v);
+                        bounds[q] = round_up_f32(f64::from(run[k - 1]) + margins[q]);
+                    }
+                }
+            }
         }
     }
 }
 
-/// One dimension's term of every lane's squared distance.
+/// One dimension's term of every lane's f32 squared distance.
 #[inline(always)]
-fn add_squares(acc: &mut [f64; SCAN_LANES], coords: &[f64; SCAN_LANES], q: f64) {
+fn add_squares(acc: &mut [f32; SIEVE_LANES], coords: &[f32; SIEVE_LANES], q: f32) {
     for (a, &t) in acc.iter_mut().zip(coords) {
-        // kiddo's SquaredEuclidean: (a − b)², added in dimension order.
         let d = t - q;
         *a += d * d;
     }
 }
 
-/// Merges a block's squared distances into `best` (ascending, full length).
-#[inline(always)]
-fn keep_smallest(acc: &[f64; SCAN_LANES], best: &mut [f64]) {
-    let last = best.len() - 1;
-    // Most blocks hold no new neighbour: one pass of comparisons, without
-    // the early exit of `any`, so it compiles to a few vector compares
-    // rather than a branch per lane.
-    let bound = best[last];
-    if !acc.iter().fold(false, |found, &v| found | (v < bound)) {
-        return;
-    }
-    for &v in acc {
-        if v < best[last] {
-            let at = best.partition_point(|&b| b <= v);
-            best.copy_within(at..last, at + 1);
-            best[at] = v;
-        }
-    }
+/// The smallest f32 at or above `x`.
+fn round_up_f32(x: f64) -> f32 {
+    let r = x as f32;
+    if f64::from(r) < x { r.next_up() } else { r }
 }
 
 fn mean_of(values: impl Iterator<Item = f64>, count: usize) -> f64 {
@@ -483,8 +695,11 @@ mod tests {
     /// Twin of the fast path: the scan must give the tree's k-NN distance
     /// to the bit, over every tree dimension, k larger than n, duplicate
     /// rows (more than a tree bucket share one point), queries that sit on
-    /// training points (ties at distance 0) and coordinates on a coarse
-    /// grid (many exact ties at the k-th distance).
+    /// training points (ties at distance 0), coordinates on a coarse grid
+    /// (many exact ties at the k-th distance), points packed closer than
+    /// f32 can tell apart (the sieve's margin must keep every row that
+    /// could be nearest), and queries far away or beyond the sieve's range
+    /// (the exact scan of every row).
     #[test]
     fn every_scan_kernel_equals_the_tree_to_the_bit() {
         let kernels: Vec<Kernel> = Kernel::WIDEST_FIRST
@@ -495,14 +710,19 @@ mod tests {
         // Say which ran: a kernel this CPU lacks goes untested here.
         eprintln!("scan kernels checked on this CPU: {kernels:?}");
         let mut rng = Xoshiro256PlusPlus::seed_from_u64(11);
-        let mut best = Vec::new();
+        let mut best = ScanScratch::default();
         for case in 0..120 {
             let dims = 1 + case % TREE_DIM;
             let n = rng.gen_range(1..300);
-            let coarse = case % 3 == 0;
+            // Case 0 mod 4: a coarse grid; 1 mod 4: points 1e-4 apart
+            // around 1,000, where one f32 step is 6.1e-5.
             let draw = |rng: &mut Xoshiro256PlusPlus| {
                 let v: f64 = rng.gen_range(-3.0..3.0);
-                if coarse { v.round() } else { v }
+                match case % 4 {
+                    0 => v.round(),
+                    1 => 1000.0 + v * 1e-4,
+                    _ => v,
+                }
             };
             let base = Array2::from_shape_fn((n, dims), |_| draw(&mut rng));
             let copies = base.select(Axis(0), &vec![0; rng.gen_range(0..40)]);
@@ -512,6 +732,11 @@ mod tests {
                 .map(|q| {
                     if q % 5 == 0 {
                         pad(train.row(rng.gen_range(0..train.nrows()))).unwrap()
+                    } else if q == 7 || q == 13 {
+                        // Far out, then beyond the f32 sieve's range.
+                        let scale = if q == 7 { 1e5 } else { 1e19 };
+                        let row: Vec<f64> = (0..dims).map(|_| draw(&mut rng) * scale).collect();
+                        pad(ndarray::ArrayView1::from(&row)).unwrap()
                     } else {
                         let row: Vec<f64> = (0..dims).map(|_| draw(&mut rng)).collect();
                         pad(ndarray::ArrayView1::from(&row)).unwrap()
@@ -542,11 +767,67 @@ mod tests {
         }
     }
 
+    /// The error bound the sieve's margin rests on (derived at
+    /// `NeighbourIndex::sieve_error_bound`), checked against f64
+    /// arithmetic, whose own error is some 10⁻⁹ of the bound: points at
+    /// scales from 1e-30 (where f32 squares underflow) to 1e17 (near the
+    /// sieve's range, [`SIEVE_MAX_ABS`]), in every
+    /// tree dimension, with queries far from the point, on it, or a
+    /// millionth of the scale away from it far from the origin (where the
+    /// difference cancels).
+    #[test]
+    fn the_sieve_error_stays_within_its_proven_bound() {
+        let mut rng = Xoshiro256PlusPlus::seed_from_u64(12);
+        let mut tightest: f64 = 0.0;
+        for case in 0..20_000 {
+            let dims = 1 + case % TREE_DIM;
+            let scale = 10f64.powi(rng.gen_range(-30..=17));
+            // Every coordinate within the sieve's range, as it requires.
+            let centre = if case % 2 == 0 || scale > 1e14 {
+                0.0
+            } else {
+                1e3 * scale
+            };
+            let t: Vec<f64> = (0..dims)
+                .map(|_| centre + rng.gen_range(-1.0..1.0) * scale)
+                .collect();
+            let q: Vec<f64> = match case % 3 {
+                0 => t
+                    .iter()
+                    .map(|v| v + rng.gen_range(-1.0..1.0) * scale * 1e-6)
+                    .collect(),
+                1 => t.clone(),
+                _ => (0..dims)
+                    .map(|_| rng.gen_range(-1.0..1.0) * scale)
+                    .collect(),
+            };
+            let index =
+                NeighbourIndex::build(Array2::from_shape_vec((1, dims), t.clone()).unwrap().view())
+                    .unwrap();
+            let mut acc = [0.0f32; SIEVE_LANES];
+            for (&tj, &qj) in t.iter().zip(&q) {
+                add_squares(&mut acc, &[tj as f32; SIEVE_LANES], qj as f32);
+            }
+            let exact: f64 = t.iter().zip(&q).map(|(a, b)| (a - b) * (a - b)).sum();
+            let bound = index.sieve_error_bound(&q);
+            let error = (f64::from(acc[0]) - exact).abs();
+            assert!(
+                error <= bound,
+                "case {case} (dims {dims}, scale {scale:e}): f32 {} against {exact:e}, \
+                 error {error:e} over the bound {bound:e}",
+                acc[0]
+            );
+            tightest = tightest.max(error / bound);
+        }
+        // Say how much of the bound the worst case used.
+        eprintln!("largest error seen: {tightest:.3} of the bound");
+    }
+
     #[test]
     fn scan_of_an_empty_request_is_nan() {
         let train = Array2::from_shape_fn((4, 2), |(i, j)| (i + j) as f64);
         let index = NeighbourIndex::build(train.view()).unwrap();
-        let mut best = Vec::new();
+        let mut best = ScanScratch::default();
         assert!(
             index
                 .scan_mean_distance(&[0.0; TREE_DIM], 0, &mut best)

@@ -57,7 +57,7 @@ use serde::{Deserialize, Serialize};
 pub use guard::{
     DomainGuard, DomainState, DomainThresholds, leverage, out_of_fold, quantile, typicality,
 };
-pub use knn::{NeighbourIndex, Point, TREE_DIM, pad};
+pub use knn::{NeighbourIndex, Point, ScanScratch, TREE_DIM, pad};
 pub use settings::DomainSettings;
 
 /// The domain verdict of one candidate.
