@@ -386,9 +386,10 @@ impl NeighbourIndex {
     ///
     /// The bound (standard floating-point error analysis, as in Higham,
     /// *Accuracy and Stability of Numerical Algorithms*, 2nd ed., §2.2 and
-    /// §3.1, with u = 2⁻²⁴ the unit roundoff of f32): rounding tⱼ and qⱼ
-    /// to f32 and subtracting leaves the difference aⱼ = tⱼ − qⱼ off by at
-    /// most eⱼ ≤ 2u·sⱼ·(1 + u), sⱼ = |tⱼ| + |qⱼ|; its square is then off
+    /// §3.1, section numbers from memory; u = 2⁻²⁴ is the unit roundoff of
+    /// f32): rounding tⱼ and qⱼ to f32 and subtracting leaves the
+    /// difference aⱼ = tⱼ − qⱼ off by at most eⱼ ≤ 2u·sⱼ·(1 + u),
+    /// sⱼ = |tⱼ| + |qⱼ|; its square is then off
     /// by at most eⱼ(2sⱼ + eⱼ) ≤ 4.01u·sⱼ²; squaring and summing p terms
     /// in f32 adds at most γₚ₊₁·Σ ãⱼ² ≤ 1.01(p + 1)u·Σ sⱼ². So
     /// |d̃ − d| ≤ (p + 6)u·Σ sⱼ² ≤ 2(p + 6)u(‖t‖² + ‖q‖²). Below f32's
