@@ -185,7 +185,7 @@ pub struct NeighbourIndex {
     /// The points rounded to f32, in blocks of [`SIEVE_LANES`] points:
     /// `blocks[b * dims + j]` holds coordinate j of points
     /// b·SIEVE_LANES .. (b + 1)·SIEVE_LANES. The last block is padded with
-    /// +∞, whose distance +∞ is never a candidate once k points are seen.
+    /// +∞; the sieve skips those lanes by row number.
     blocks: Vec<[f32; SIEVE_LANES]>,
     /// The largest squared norm of a training point: the sieve's error
     /// bound grows with it.
@@ -413,7 +413,10 @@ impl NeighbourIndex {
     ///
     /// Why twice the bound: the k rows with the smallest d̃ all have
     /// d ≤ d̃ₖ + bound, so the exact k-th smallest dₖ is at most that, and
-    /// every row with d ≤ dₖ has d̃ ≤ d + bound ≤ d̃ₖ + 2·bound.
+    /// every row with d ≤ dₖ has d̃ ≤ d + bound ≤ d̃ₖ + 2·bound. Here d is
+    /// the real distance; the ranking to reproduce is by kiddo's f64 value
+    /// of it, off by at most γₚ(f64)·d, some 10⁻⁹ of the bound, which the
+    /// second factor of two covers many times over.
     fn sieve_margin(&self, q: &[f64]) -> f64 {
         4.0 * self.sieve_error_bound(q)
     }
@@ -487,6 +490,11 @@ enum Kernel {
     #[cfg(target_arch = "x86_64")]
     Avx,
     Portable,
+    /// The AVX-512 kernel's code (eight queries a pass, fused
+    /// multiply-adds) without its instructions, so its grouping is tested
+    /// on every CPU. Listed after `Portable`, so never detected.
+    #[cfg(test)]
+    PortableAsAvx512,
 }
 
 impl Kernel {
@@ -498,6 +506,8 @@ impl Kernel {
         #[cfg(target_arch = "x86_64")]
         Kernel::Avx,
         Kernel::Portable,
+        #[cfg(test)]
+        Kernel::PortableAsAvx512,
     ];
 
     /// The widest kernel this CPU supports (the standard library caches
@@ -513,9 +523,14 @@ impl Kernel {
     fn supported(self) -> bool {
         match self {
             #[cfg(target_arch = "x86_64")]
+            // Every feature `avx512f` turns on in the compiler (it implies
+            // AVX2, FMA and F16C), so the kernel's code runs only where
+            // all of them are.
             Kernel::Avx512 => {
                 std::arch::is_x86_feature_detected!("avx512f")
+                    && std::arch::is_x86_feature_detected!("avx2")
                     && std::arch::is_x86_feature_detected!("fma")
+                    && std::arch::is_x86_feature_detected!("f16c")
             }
             #[cfg(target_arch = "x86_64")]
             Kernel::AvxFma => {
@@ -525,6 +540,8 @@ impl Kernel {
             #[cfg(target_arch = "x86_64")]
             Kernel::Avx => std::arch::is_x86_feature_detected!("avx"),
             Kernel::Portable => true,
+            #[cfg(test)]
+            Kernel::PortableAsAvx512 => true,
         }
     }
 
@@ -551,7 +568,8 @@ impl Kernel {
             #[cfg(target_arch = "x86_64")]
             Kernel::Avx512 => {
                 assert!(self.supported(), "AVX-512F sieve on a CPU without it");
-                // SAFETY: the CPU supports AVX-512F and FMA, checked just above.
+                // SAFETY: the CPU supports AVX-512F, AVX2, FMA and F16C,
+                // checked just above.
                 unsafe { sieve_avx512(sieve, queries, margins, rough, found) }
             }
             #[cfg(target_arch = "x86_64")]
@@ -568,6 +586,10 @@ impl Kernel {
             }
             Kernel::Portable => {
                 sieve_queries::<QUERIES_PORTABLE, false>(sieve, queries, margins, rough, found)
+            }
+            #[cfg(test)]
+            Kernel::PortableAsAvx512 => {
+                sieve_queries::<QUERIES_AVX512, true>(sieve, queries, margins, rough, found)
             }
         }
     }
@@ -725,7 +747,7 @@ fn mean_of(values: impl Iterator<Item = f64>, count: usize) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use ndarray::{Array2, Axis, concatenate};
+    use ndarray::{Array2, ArrayView1, Axis, concatenate};
     use rand::{Rng, SeedableRng};
     use rand_xoshiro::Xoshiro256PlusPlus;
 
@@ -750,19 +772,26 @@ mod tests {
         let mut best = ScanScratch::default();
         for case in 0..120 {
             let dims = 1 + case % TREE_DIM;
-            let n = rng.gen_range(1..300);
+            // The first cases hold exactly 1, 15, 16 and 17 rows: less
+            // than one block of the sieve, one, and one and a row.
+            let (n, n_copies) = match case {
+                0..4 => ([1, 15, 16, 17][case], 0),
+                _ => (rng.gen_range(1..300), rng.gen_range(0..40)),
+            };
             // Case 0 mod 4: a coarse grid; 1 mod 4: points 1e-4 apart
-            // around 1,000, where one f32 step is 6.1e-5.
+            // around 1,000, where one f32 step is 6.1e-5; 3 mod 8: every
+            // point beyond the sieve's range, so the index scans exactly.
             let draw = |rng: &mut Xoshiro256PlusPlus| {
                 let v: f64 = rng.gen_range(-3.0..3.0);
-                match case % 4 {
-                    0 => v.round(),
-                    1 => 1000.0 + v * 1e-4,
+                match (case % 4, case % 8) {
+                    (0, _) => v.round(),
+                    (1, _) => 1000.0 + v * 1e-4,
+                    (_, 3) => v * 1e19,
                     _ => v,
                 }
             };
             let base = Array2::from_shape_fn((n, dims), |_| draw(&mut rng));
-            let copies = base.select(Axis(0), &vec![0; rng.gen_range(0..40)]);
+            let copies = base.select(Axis(0), &vec![0; n_copies]);
             let train = concatenate(Axis(0), &[base.view(), copies.view()]).unwrap();
             let index = NeighbourIndex::build(train.view()).unwrap();
             let queries: Vec<Point> = (0..30)
@@ -867,6 +896,82 @@ mod tests {
         }
         // Say how much of the bound the worst case used.
         eprintln!("largest error seen: {tightest:.3} of the bound");
+    }
+
+    /// Rows the exact step computes for the one query of the last scan:
+    /// the candidates within its final limit.
+    fn rechecked(scratch: &ScanScratch, k: usize) -> usize {
+        let limit = f64::from(scratch.rough[k - 1]) + scratch.margins[0];
+        scratch.found[0]
+            .iter()
+            .filter(|&&(_, d)| f64::from(d) <= limit)
+            .count()
+    }
+
+    /// The sieve's filter at work. Fifty rows on a shell round the query
+    /// whose radii differ by 1e-9, far below what f32 resolves, must all
+    /// be rechecked, so the exact nearest among them wins; 500 rows
+    /// beyond twice the radius must not be. And on uniform points the
+    /// exact step sees a small share of the rows. Every answer is the
+    /// tree's to the bit.
+    #[test]
+    fn the_sieve_rechecks_every_near_tie_and_little_else() {
+        let mut rng = Xoshiro256PlusPlus::seed_from_u64(13);
+        let kernels: Vec<Kernel> = Kernel::WIDEST_FIRST
+            .iter()
+            .copied()
+            .filter(|k| k.supported())
+            .collect();
+        let mut scratch = ScanScratch::default();
+        let k = 5;
+        for dims in [2, 10, 16] {
+            let q: Vec<f64> = (0..dims).map(|_| rng.gen_range(-1.0..1.0)).collect();
+            let direction = |rng: &mut Xoshiro256PlusPlus| {
+                let u: Vec<f64> = (0..dims).map(|_| rng.gen_range(-1.0..1.0)).collect();
+                let norm = u.iter().map(|v| v * v).sum::<f64>().sqrt();
+                u.into_iter().map(move |v| v / norm)
+            };
+            let mut rows = Vec::new();
+            for i in 0..550 {
+                let radius = if i < 50 {
+                    1.0 + i as f64 * 1e-9
+                } else {
+                    2.0 + rng.gen_range(0.0..1.0)
+                };
+                let u: Vec<f64> = direction(&mut rng).collect();
+                rows.extend(q.iter().zip(u).map(|(c, u)| c + radius * u));
+            }
+            // Shuffled, so the near ties are not all seen first.
+            let mut order: Vec<usize> = (0..550).collect();
+            for i in (1..order.len()).rev() {
+                order.swap(i, rng.gen_range(0..=i));
+            }
+            let train = Array2::from_shape_fn((550, dims), |(i, j)| rows[order[i] * dims + j]);
+            let index = NeighbourIndex::build(train.view()).unwrap();
+            let query = pad(ArrayView1::from(&q)).unwrap();
+            let tree = index.mean_distance(&query, k);
+            for &kernel in &kernels {
+                let scan = index.scan_mean_distances_by(kernel, &[query], k, &mut scratch)[0];
+                assert_eq!(tree.to_bits(), scan.to_bits(), "{dims} dims, {kernel:?}");
+                assert_eq!(rechecked(&scratch, k), 50, "{dims} dims, {kernel:?}");
+            }
+        }
+        let train = Array2::from_shape_fn((2000, 10), |_| rng.gen_range(-1.0..1.0));
+        let index = NeighbourIndex::build(train.view()).unwrap();
+        for _ in 0..20 {
+            let q: Vec<f64> = (0..10).map(|_| rng.gen_range(-1.0..1.0)).collect();
+            let query = pad(ArrayView1::from(&q)).unwrap();
+            let tree = index.mean_distance(&query, k);
+            for &kernel in &kernels {
+                let scan = index.scan_mean_distances_by(kernel, &[query], k, &mut scratch)[0];
+                assert_eq!(tree.to_bits(), scan.to_bits(), "uniform, {kernel:?}");
+                let seen = rechecked(&scratch, k);
+                assert!(
+                    (k..100).contains(&seen),
+                    "uniform, {kernel:?}: {seen} of 2,000 rows rechecked"
+                );
+            }
+        }
     }
 
     #[test]
