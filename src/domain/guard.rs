@@ -9,7 +9,7 @@ use ndarray::{Array2, ArrayView1, ArrayView2, Axis};
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
-use super::knn::{self, NeighbourIndex};
+use super::knn::{self, NeighbourIndex, ScanScratch};
 use super::rules::{self, Measured};
 use super::{DomainSettings, DomainSignals, Error, OutOfRange};
 use crate::space::pca::Pca;
@@ -124,48 +124,47 @@ impl DomainGuard {
         // The rows in `rows`: one neighbour search for all their points
         // (the scan shares each read of the training points between
         // several queries), then each row judged.
-        let judge_rows =
-            |rows: Range<usize>, scratch: &mut knn::ScanScratch| -> Vec<DomainSignals> {
-                let points: Vec<Option<knn::Point>> = rows
-                    .clone()
-                    .map(|i| {
-                        let finite = x_std
-                            .row(i)
-                            .iter()
-                            .chain(x_raw.row(i))
-                            .all(|v| v.is_finite());
-                        knn::pad(scores.row(i)).ok().filter(|_| finite)
-                    })
-                    .collect();
-                let placed: Vec<knn::Point> = points.iter().flatten().copied().collect();
-                let distances =
-                    self.index
-                        .fast_mean_distances(&placed, self.state.settings.k, scratch);
-                let mut next = 0;
-                rows.zip(&points)
-                    .map(|(i, point)| match point {
-                        Some(_) => {
-                            // One distance per placed point, in their order.
-                            let d = distances[next];
-                            next += 1;
-                            self.judge(d, scores.row(i), residuals[i], x_raw.row(i))
-                        }
-                        None => rules::unplaceable(),
-                    })
-                    .collect()
-            };
+        let judge_rows = |rows: Range<usize>, scratch: &mut ScanScratch| -> Vec<DomainSignals> {
+            let points: Vec<Option<knn::Point>> = rows
+                .clone()
+                .map(|i| {
+                    let finite = x_std
+                        .row(i)
+                        .iter()
+                        .chain(x_raw.row(i))
+                        .all(|v| v.is_finite());
+                    knn::pad(scores.row(i)).ok().filter(|_| finite)
+                })
+                .collect();
+            let placed: Vec<knn::Point> = points.iter().flatten().copied().collect();
+            let distances = self
+                .index
+                .fast_mean_distances(&placed, self.state.settings.k, scratch);
+            let mut next = 0;
+            rows.zip(&points)
+                .map(|(i, point)| match point {
+                    Some(_) => {
+                        // One distance per placed point, in their order.
+                        let d = distances[next];
+                        next += 1;
+                        self.judge(d, scores.row(i), residuals[i], x_raw.row(i))
+                    }
+                    None => rules::unplaceable(),
+                })
+                .collect()
+        };
         // Rows are independent neighbour scans of a few microseconds each:
         // a batch is shared between the cores in chunks, each worker
         // reusing one scratch buffer; a handful of rows is not worth a
         // thread hand-off.
         let n = x_std.nrows();
         if n < PARALLEL_ROWS {
-            return judge_rows(0..n, &mut knn::ScanScratch::default());
+            return judge_rows(0..n, &mut ScanScratch::default());
         }
         let chunk = PARALLEL_ROWS / 2;
         let judged: Vec<Vec<DomainSignals>> = (0..n.div_ceil(chunk))
             .into_par_iter()
-            .map_init(knn::ScanScratch::default, |scratch, c| {
+            .map_init(ScanScratch::default, |scratch, c| {
                 judge_rows(c * chunk..n.min((c + 1) * chunk), scratch)
             })
             .collect();

@@ -204,8 +204,9 @@ pub struct ScanScratch {
     rough: Vec<f32>,
     /// The sieved queries rounded to f32.
     queries: Vec<[f32; TREE_DIM]>,
-    /// Their error margins, and where each sits among the caller's points.
+    /// Their error margins.
     margins: Vec<f64>,
+    /// Where each sieved query sits among the caller's points.
     sieved: Vec<usize>,
     /// Each sieved query's candidates: (row, f32 squared distance).
     found: Vec<Vec<(u32, f32)>>,
