@@ -460,8 +460,13 @@ impl NeighbourIndex {
 fn keep_if_smaller<T: PartialOrd + Copy>(best: &mut [T], v: T) {
     let last = best.len() - 1;
     if v < best[last] {
-        let at = best.partition_point(|&b| b <= v);
-        best.copy_within(at..last, at + 1);
+        // Shifted one by one from the top: k is a handful, and a block copy
+        // here was a library call per insert.
+        let mut at = last;
+        while at > 0 && v < best[at - 1] {
+            best[at] = best[at - 1];
+            at -= 1;
+        }
         best[at] = v;
     }
 }
@@ -706,9 +711,16 @@ fn sieve_pass<const Q: usize, const FMA: bool>(
             if !acc.iter().fold(false, |hit, &v| hit | (v <= bound)) {
                 continue;
             }
+            // Then a bit per lane, and a visit to the lanes that passed only.
+            let mut hits = acc.iter().enumerate().fold(0u32, |bits, (lane, &v)| {
+                bits | (u32::from(v <= bound) << lane)
+            });
             let run = &mut rough[q * k..(q + 1) * k];
-            for (lane, &v) in acc.iter().enumerate() {
-                let row = b * SIEVE_LANES + lane;
+            while hits != 0 {
+                let lane = hits.trailing_zeros() as usize;
+                hits &= hits - 1;
+                let (row, v) = (b * SIEVE_LANES + lane, acc[lane]);
+                // The bound may have fallen since the bits were taken.
                 if v <= bounds[q] && row < sieve.n {
                     found[q].push((row as u32, v));
                     if v < run[k - 1] {
