@@ -480,9 +480,12 @@ pub(crate) mod tests {
         let (writer, ids) = AuditWriter::start(&options(&path, 8)).unwrap();
         let ids = Arc::new(ids);
         let mut tasks = Vec::new();
+        // Sizes on both sides of the rows one insert statement carries (16),
+        // so whole statements, a remainder and both together read back.
+        let sizes = [1, 2, 5, 15, 16, 17, 33, 48];
         for k in 0..40 {
             let writer = writer.clone();
-            let e = entry(&ids, 1 + k % 5);
+            let e = entry(&ids, sizes[k % sizes.len()]);
             tasks.push(tokio::spawn(async move {
                 writer.commit(e.clone()).await.map(|_| e)
             }));
