@@ -128,9 +128,16 @@ impl ScoringModel {
     /// scored; callers reject it as they reject NaN.
     pub fn unscorable_column(&self, row: &[f64]) -> Option<usize> {
         let s = &self.standardizer;
-        row.iter()
-            .zip(s.mean.iter().zip(s.scale.iter()))
-            .position(|(v, (m, sd))| !((v - m) / sd).is_finite())
+        let columns = || row.iter().zip(s.mean.iter().zip(s.scale.iter()));
+        let finite = |(v, (m, sd)): (&f64, (&f64, &f64))| ((v - m) / sd).is_finite();
+        // Every row is checked and almost every row passes: one pass with
+        // no early exit, which vectorises the divisions, and the search
+        // for the column only when one fails.
+        if columns().fold(true, |all, c| all & finite(c)) {
+            None
+        } else {
+            columns().position(|c| !finite(c))
+        }
     }
 
     /// Scores B candidates given as raw descriptor rows in the bundle's
