@@ -711,10 +711,16 @@ fn sieve_pass<const Q: usize, const FMA: bool>(
             if !acc.iter().fold(false, |hit, &v| hit | (v <= bound)) {
                 continue;
             }
-            // Then a bit per lane, and a visit to the lanes that passed only.
-            let mut hits = acc.iter().enumerate().fold(0u32, |bits, (lane, &v)| {
-                bits | (u32::from(v <= bound) << lane)
-            });
+            // Then a bit per lane, and a visit to the lanes that passed
+            // only. With one query a pass, taking the bits lane by lane
+            // left its sums unvectorised, so every lane is visited instead.
+            let mut hits = if Q == 1 {
+                u32::MAX >> (32 - SIEVE_LANES)
+            } else {
+                acc.iter().enumerate().fold(0u32, |bits, (lane, &v)| {
+                    bits | (u32::from(v <= bound) << lane)
+                })
+            };
             let run = &mut rough[q * k..(q + 1) * k];
             while hits != 0 {
                 let lane = hits.trailing_zeros() as usize;
