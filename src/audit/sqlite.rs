@@ -364,6 +364,13 @@ fn insert_candidates_sql(rows: usize) -> String {
     )
 }
 
+/// The two inserts the writer runs, built once rather than at every commit
+/// (the statement cache is keyed by their text).
+static INSERT_MANY_CANDIDATES: std::sync::LazyLock<String> =
+    std::sync::LazyLock::new(|| insert_candidates_sql(CANDIDATES_PER_INSERT));
+static INSERT_ONE_CANDIDATE: std::sync::LazyLock<String> =
+    std::sync::LazyLock::new(|| insert_candidates_sql(1));
+
 /// Binds candidate `c` as the row whose parameters start after `offset`.
 fn bind_candidate(
     stmt: &mut rusqlite::CachedStatement<'_>,
@@ -417,7 +424,7 @@ fn bind_candidate(
 fn insert_candidates(tx: &Transaction<'_>, candidates: &[CandidateRecord]) -> rusqlite::Result<()> {
     let (groups, rest) = candidates.as_chunks::<CANDIDATES_PER_INSERT>();
     if !groups.is_empty() {
-        let mut many = tx.prepare_cached(&insert_candidates_sql(CANDIDATES_PER_INSERT))?;
+        let mut many = tx.prepare_cached(&INSERT_MANY_CANDIDATES)?;
         for group in groups {
             for (r, c) in group.iter().enumerate() {
                 bind_candidate(&mut many, r * CANDIDATE_PARAMS, c)?;
@@ -426,7 +433,7 @@ fn insert_candidates(tx: &Transaction<'_>, candidates: &[CandidateRecord]) -> ru
         }
     }
     if !rest.is_empty() {
-        let mut one = tx.prepare_cached(&insert_candidates_sql(1))?;
+        let mut one = tx.prepare_cached(&INSERT_ONE_CANDIDATE)?;
         for c in rest {
             bind_candidate(&mut one, 0, c)?;
             one.raw_execute()?;
@@ -834,10 +841,7 @@ mod tests {
         assert!(!sql.contains(" IN ("), "{sql}");
         assert!(sql.contains("status = 'rejected'"), "{sql}");
         let mut explain = conn
-            .prepare(&format!(
-                "EXPLAIN {}",
-                insert_candidates_sql(CANDIDATES_PER_INSERT)
-            ))
+            .prepare(&format!("EXPLAIN {}", *INSERT_MANY_CANDIDATES))
             .unwrap();
         // EXPLAIN compiles without running: the parameters stay unbound.
         let mut rows = explain.raw_query();

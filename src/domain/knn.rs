@@ -455,11 +455,12 @@ impl NeighbourIndex {
 }
 
 /// Inserts `v` into `best` (ascending, full length) if it is smaller than
-/// the largest there, dropping that one.
+/// the largest there, dropping that one; says whether it did.
 #[inline(always)]
-fn keep_if_smaller<T: PartialOrd + Copy>(best: &mut [T], v: T) {
+fn keep_if_smaller<T: PartialOrd + Copy>(best: &mut [T], v: T) -> bool {
     let last = best.len() - 1;
-    if v < best[last] {
+    let smaller = v < best[last];
+    if smaller {
         // Shifted one by one from the top: k is a handful, and a block copy
         // here was a library call per insert.
         let mut at = last;
@@ -469,6 +470,7 @@ fn keep_if_smaller<T: PartialOrd + Copy>(best: &mut [T], v: T) {
         }
         best[at] = v;
     }
+    smaller
 }
 
 /// What the sieve reads: the index's f32 blocks and the run length.
@@ -730,8 +732,7 @@ fn sieve_pass<const Q: usize, const FMA: bool>(
                 // The bound may have fallen since the bits were taken.
                 if v <= bounds[q] && row < sieve.n {
                     found[q].push((row as u32, v));
-                    if v < run[k - 1] {
-                        keep_if_smaller(run, v);
+                    if keep_if_smaller(run, v) {
                         bounds[q] = round_up_f32(f64::from(run[k - 1]) + margins[q]);
                     }
                 }
@@ -771,6 +772,15 @@ mod tests {
     use rand::{Rng, SeedableRng};
     use rand_xoshiro::Xoshiro256PlusPlus;
 
+    /// Every scan kernel this CPU runs.
+    fn kernels_here() -> Vec<Kernel> {
+        Kernel::WIDEST_FIRST
+            .iter()
+            .copied()
+            .filter(|k| k.supported())
+            .collect()
+    }
+
     /// Twin of the fast path: the scan must give the tree's k-NN distance
     /// to the bit, over every tree dimension, k larger than n, duplicate
     /// rows (more than a tree bucket share one point), queries that sit on
@@ -781,11 +791,7 @@ mod tests {
     /// (the exact scan of every row).
     #[test]
     fn every_scan_kernel_equals_the_tree_to_the_bit() {
-        let kernels: Vec<Kernel> = Kernel::WIDEST_FIRST
-            .iter()
-            .copied()
-            .filter(|k| k.supported())
-            .collect();
+        let kernels = kernels_here();
         // Say which ran: a kernel this CPU lacks goes untested here.
         eprintln!("scan kernels checked on this CPU: {kernels:?}");
         let mut rng = Xoshiro256PlusPlus::seed_from_u64(11);
@@ -937,11 +943,7 @@ mod tests {
     #[test]
     fn the_sieve_rechecks_every_near_tie_and_little_else() {
         let mut rng = Xoshiro256PlusPlus::seed_from_u64(13);
-        let kernels: Vec<Kernel> = Kernel::WIDEST_FIRST
-            .iter()
-            .copied()
-            .filter(|k| k.supported())
-            .collect();
+        let kernels = kernels_here();
         let mut scratch = ScanScratch::default();
         let k = 5;
         for dims in [2, 10, 16] {
