@@ -190,6 +190,15 @@ fn scan_figures(n: usize, dims: usize) {
         scan * 1e3,
         batched * 1e3
     );
+    if batched > scan {
+        // Several queries a pass should cost less a query than one; the
+        // opposite has meant the compiler vectorised the sieve the wrong
+        // way (see DEVELOPERS.md, "Performance work").
+        println!(
+            "  WARNING: the batched scan is slower than one query at a time; \
+             read the sieve kernel's machine code for gathers"
+        );
+    }
 }
 
 fn cvplus_figures() {
