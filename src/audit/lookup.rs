@@ -23,7 +23,7 @@
 //! first 8 bytes of the SHA-256 of its id (UTF-8) as a little-endian u64
 //! and its position as a little-endian u32, ordered by (hash, position).
 
-use std::collections::{BTreeSet, HashMap};
+use std::collections::{BTreeMap, BTreeSet, HashMap};
 
 use rusqlite::{Connection, OptionalExtension, Transaction, params};
 
@@ -87,8 +87,13 @@ pub enum DigestError {
     Length { len: usize },
 }
 
-/// The positions a digest holds under `hash`, ascending.
-fn positions(digest: &[u8], hash: u64) -> impl Iterator<Item = u32> + '_ {
+/// Calls `hit(w, position)` for every digest entry whose hash is
+/// `wanted[w]`; `wanted` is ascending without repeats. One forward pass:
+/// each hash is found by galloping from where the previous one ended
+/// (doubling steps, then a binary search), so an upload of w ids costs
+/// O(w log(n/w)) reads of a digest of n entries, and never more than a
+/// binary search per id.
+fn each_match(digest: &[u8], wanted: &[u64], mut hit: impl FnMut(usize, u32)) {
     let entries = &digest[1..];
     let n = entries.len() / ENTRY;
     let hash_at = |i: usize| {
@@ -96,23 +101,35 @@ fn positions(digest: &[u8], hash: u64) -> impl Iterator<Item = u32> + '_ {
         b.copy_from_slice(&entries[i * ENTRY..i * ENTRY + 8]);
         u64::from_le_bytes(b)
     };
-    // First entry with a hash not below the one sought.
-    let (mut lo, mut hi) = (0, n);
-    while lo < hi {
-        let mid = (lo + hi) / 2;
-        if hash_at(mid) < hash {
-            lo = mid + 1;
-        } else {
-            hi = mid;
+    let position_at = |i: usize| {
+        let mut b = [0u8; 4];
+        b.copy_from_slice(&entries[i * ENTRY + 8..i * ENTRY + ENTRY]);
+        u32::from_le_bytes(b)
+    };
+    // Every entry before `lo` has a hash below the one sought.
+    let mut lo = 0;
+    for (w, &hash) in wanted.iter().enumerate() {
+        let (mut hi, mut step) = (lo, 1);
+        while hi < n && hash_at(hi) < hash {
+            lo = hi + 1;
+            hi = lo + step;
+            step *= 2;
+        }
+        let mut hi = hi.min(n);
+        while lo < hi {
+            let mid = lo + (hi - lo) / 2;
+            if hash_at(mid) < hash {
+                lo = mid + 1;
+            } else {
+                hi = mid;
+            }
+        }
+        let mut i = lo;
+        while i < n && hash_at(i) == hash {
+            hit(w, position_at(i));
+            i += 1;
         }
     }
-    (lo..n)
-        .take_while(move |&i| hash_at(i) == hash)
-        .map(move |i| {
-            let mut b = [0u8; 4];
-            b.copy_from_slice(&entries[i * ENTRY + 8..i * ENTRY + ENTRY]);
-            u32::from_le_bytes(b)
-        })
 }
 
 fn check(digest: &[u8]) -> Result<(), DigestError> {
@@ -143,7 +160,8 @@ pub fn records_by_candidate(
     conn: &Connection,
     wanted: &[(String, String)],
 ) -> Result<HashMap<(String, String), Vec<String>>, Error> {
-    let mut by_model: HashMap<&str, HashMap<u64, Vec<&str>>> = HashMap::new();
+    // Per model, the wanted hashes ascending, each with the ids that have it.
+    let mut by_model: HashMap<&str, BTreeMap<u64, Vec<&str>>> = HashMap::new();
     for (candidate_id, model_id) in wanted {
         by_model
             .entry(model_id)
@@ -170,6 +188,7 @@ pub fn records_by_candidate(
         )
         .map_err(read_err)?;
     for (model_id, hashes) in &by_model {
+        let (sorted, ids_of): (Vec<u64>, Vec<&Vec<&str>>) = hashes.iter().unzip();
         let mut rows = digests.query([model_id]).map_err(read_err)?;
         while let Some(row) = rows.next().map_err(read_err)? {
             let request_id: String = row.get(0).map_err(read_err)?;
@@ -181,27 +200,27 @@ pub fn records_by_candidate(
                 ))
             })?;
             check(digest).map_err(|e| corrupt(&request_id, e.to_string()))?;
-            for (&hash, ids) in hashes {
-                for position in positions(digest, hash) {
-                    // The row itself decides: a hash shared by two ids
-                    // matches only the one the row holds.
-                    let hit: Option<(String, String)> = candidate
-                        .query_row(params![request_id, position], |r| {
-                            Ok((r.get(0)?, r.get(1)?))
-                        })
-                        .optional()
-                        .map_err(read_err)?;
-                    let Some((record_id, held)) = hit else {
-                        return Err(corrupt(
-                            &request_id,
-                            format!("it names position {position}, which the request lacks"),
-                        ));
-                    };
-                    if ids.contains(&held.as_str())
-                        && let Some(set) = found.get_mut(&(held, model_id.to_string()))
-                    {
-                        set.insert(record_id);
-                    }
+            let mut hits = Vec::new();
+            each_match(digest, &sorted, |w, position| hits.push((w, position)));
+            for (w, position) in hits {
+                // The row itself decides: a hash shared by two ids
+                // matches only the one the row holds.
+                let hit: Option<(String, String)> = candidate
+                    .query_row(params![request_id, position], |r| {
+                        Ok((r.get(0)?, r.get(1)?))
+                    })
+                    .optional()
+                    .map_err(read_err)?;
+                let Some((record_id, held)) = hit else {
+                    return Err(corrupt(
+                        &request_id,
+                        format!("it names position {position}, which the request lacks"),
+                    ));
+                };
+                if ids_of[w].contains(&held.as_str())
+                    && let Some(set) = found.get_mut(&(held, model_id.to_string()))
+                {
+                    set.insert(record_id);
                 }
             }
         }
@@ -428,6 +447,13 @@ mod tests {
         );
     }
 
+    /// `each_match` collected as (wanted index, position) pairs.
+    fn matches(blob: &[u8], wanted: &[u64]) -> Vec<(usize, u32)> {
+        let mut out = Vec::new();
+        each_match(blob, wanted, |w, p| out.push((w, p)));
+        out
+    }
+
     #[test]
     fn a_digest_finds_every_position_of_every_id_and_nothing_else() {
         let ids = ["c1", "c2", "c1", "lot-7/a", "", "c2", "c1"];
@@ -435,16 +461,61 @@ mod tests {
         assert_eq!(blob.len(), 1 + ids.len() * ENTRY);
         check(&blob).unwrap();
         for id in ids {
-            let expected: Vec<u32> = (0..ids.len() as u32)
+            let expected: Vec<(usize, u32)> = (0..ids.len() as u32)
                 .filter(|&p| ids[p as usize] == id)
+                .map(|p| (0, p))
                 .collect();
-            let got: Vec<u32> = positions(&blob, id_hash(id)).collect();
-            assert_eq!(got, expected, "{id:?}");
+            assert_eq!(matches(&blob, &[id_hash(id)]), expected, "{id:?}");
         }
-        assert_eq!(positions(&blob, id_hash("c3")).count(), 0);
+        assert!(matches(&blob, &[id_hash("c3")]).is_empty());
         let empty = digest(std::iter::empty());
         assert_eq!(empty, vec![FORMAT]);
-        assert_eq!(positions(&empty, id_hash("c1")).count(), 0);
+        assert!(matches(&empty, &[id_hash("c1")]).is_empty());
+    }
+
+    /// Many ids at once, against checking every entry of the digest: long
+    /// and short gallops, repeated ids, absent ids, hashes below and above
+    /// every entry.
+    #[test]
+    fn one_pass_finds_what_checking_every_entry_finds() {
+        let mut rng = rand_xoshiro::Xoshiro256PlusPlus::seed_from_u64(9);
+        let ids: Vec<String> = (0..3000)
+            .map(|_| format!("lot-{}", rng.gen_range(0..2000)))
+            .collect();
+        let blob = digest(
+            ids.iter()
+                .enumerate()
+                .map(|(p, id)| (p as u32, id.as_str())),
+        );
+        let entries: Vec<(u64, u32)> = blob[1..]
+            .chunks_exact(ENTRY)
+            .map(|e| {
+                (
+                    u64::from_le_bytes(e[..8].try_into().unwrap()),
+                    u32::from_le_bytes(e[8..].try_into().unwrap()),
+                )
+            })
+            .collect();
+        for asked in [1, 2, 10, 500, 4000] {
+            let mut wanted: Vec<u64> = (0..asked)
+                .map(|_| id_hash(&format!("lot-{}", rng.gen_range(0..4000))))
+                .chain([0, u64::MAX])
+                .collect();
+            wanted.sort_unstable();
+            wanted.dedup();
+            let expected: Vec<(usize, u32)> = wanted
+                .iter()
+                .enumerate()
+                .flat_map(|(w, &h)| {
+                    entries
+                        .iter()
+                        .filter(move |e| e.0 == h)
+                        .map(move |e| (w, e.1))
+                })
+                .collect();
+            assert!(asked < 10 || !expected.is_empty());
+            assert_eq!(matches(&blob, &wanted), expected, "{asked} asked");
+        }
     }
 
     #[test]
