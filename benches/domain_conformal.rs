@@ -193,7 +193,7 @@ fn scan_figures(n: usize, dims: usize) {
     if batched > scan {
         // Several queries a pass should cost less a query than one; the
         // opposite has meant the compiler vectorised the sieve the wrong
-        // way (see DEVELOPERS.md, "Performance work").
+        // way (DEVELOPERS.md, "Run, test, bench", says how to look).
         println!(
             "  WARNING: the batched scan is slower than one query at a time; \
              read the sieve kernel's machine code for gathers"

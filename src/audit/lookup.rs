@@ -91,8 +91,8 @@ pub enum DigestError {
 /// `wanted[w]`; `wanted` is ascending without repeats. One forward pass:
 /// each hash is found by galloping from where the previous one ended
 /// (doubling steps, then a binary search), so an upload of w ids costs
-/// O(w log(n/w)) reads of a digest of n entries, and never more than a
-/// binary search per id.
+/// O(w log(n/w)) reads of a digest of n entries, and at most about twice
+/// a binary search per id.
 fn each_match(digest: &[u8], wanted: &[u64], mut hit: impl FnMut(usize, u32)) {
     let entries = &digest[1..];
     let n = entries.len() / ENTRY;
