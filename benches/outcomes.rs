@@ -103,10 +103,25 @@ fn measure(requests: usize) -> Row {
     let caller = Caller::default();
     let mut by_candidate_ms = Vec::new();
     let mut by_record_ms = Vec::new();
-    for upload in 0..UPLOADS {
+    // One timed upload; each of its `distinct` targets must be stored
+    // (replacing an earlier upload's value where the picks repeat one).
+    let mut upload = |rows: &[OutcomeInput], distinct: usize, now_us: i64, what: &str| -> f64 {
+        let t = Instant::now();
+        let results = outcomes::record(&mut conn, rows, true, "bench", now_us, &caller)
+            .unwrap_or_else(|e| panic!("record by {what}: {e}"));
+        let ms = t.elapsed().as_secs_f64() * 1e3;
+        let stored = results.iter().filter(|r| r.stored()).count();
+        assert_eq!(stored, distinct, "by {what}: every row found once");
+        ms
+    };
+    for _ in 0..UPLOADS {
         // Candidates spread over the whole store, as results of a screen
         // that ran over months would be; each upload its own.
         let picks: Vec<usize> = (0..UPLOAD).map(|_| rng.gen_range(0..candidates)).collect();
+        let distinct = picks
+            .iter()
+            .collect::<std::collections::BTreeSet<_>>()
+            .len();
         let by_candidate: Vec<OutcomeInput> = picks
             .iter()
             .map(|&g| OutcomeInput {
@@ -117,20 +132,7 @@ fn measure(requests: usize) -> Row {
                 observed: g as f64 * 1e-3,
             })
             .collect();
-        let t = Instant::now();
-        let results = outcomes::record(&mut conn, &by_candidate, true, "bench", 1, &caller)
-            .expect("record by candidate id");
-        by_candidate_ms.push(t.elapsed().as_secs_f64() * 1e3);
-        let stored = results.iter().filter(|r| r.stored()).count();
-        let distinct = picks
-            .iter()
-            .collect::<std::collections::BTreeSet<_>>()
-            .len();
-        assert_eq!(
-            stored, distinct,
-            "upload {upload}: every candidate found once"
-        );
-
+        by_candidate_ms.push(upload(&by_candidate, distinct, 1, "candidate id"));
         let by_record: Vec<OutcomeInput> = picks
             .iter()
             .map(|&g| OutcomeInput {
@@ -138,12 +140,7 @@ fn measure(requests: usize) -> Row {
                 observed: g as f64 * 2e-3,
             })
             .collect();
-        let t = Instant::now();
-        let results = outcomes::record(&mut conn, &by_record, true, "bench", 2, &caller)
-            .expect("record by record id");
-        by_record_ms.push(t.elapsed().as_secs_f64() * 1e3);
-        let stored = results.iter().filter(|r| r.stored()).count();
-        assert_eq!(stored, distinct, "upload {upload}: every record found once");
+        by_record_ms.push(upload(&by_record, distinct, 2, "record id"));
     }
     Row {
         candidates,
