@@ -13,7 +13,9 @@
 //! The scan first sieves in f32, twice the lanes of f64 a vector register,
 //! keeping as candidates the rows whose rough distance is within a proven
 //! error margin of the k-th smallest (the bound is derived at
-//! `NeighbourIndex::sieve_margin`). It then computes each candidate's
+//! `NeighbourIndex::sieve_margin`). The rough distance is expanded as
+//! ‖t‖² + ‖q‖² − 2t·q, one multiply-add a dimension, with the norms
+//! computed once per training row and once per query. It then computes each candidate's
 //! squared distance by exactly the expression kiddo uses (Σⱼ (tⱼ − qⱼ)² in
 //! f64, dimension order, no fused multiply-add), keeps the k smallest, and
 //! sums their square roots nearest first as the tree path does, so the
@@ -185,8 +187,12 @@ pub struct NeighbourIndex {
     /// The points rounded to f32, in blocks of [`SIEVE_LANES`] points:
     /// `blocks[b * dims + j]` holds coordinate j of points
     /// b·SIEVE_LANES .. (b + 1)·SIEVE_LANES. The last block is padded with
-    /// +∞; the sieve skips those lanes by row number.
+    /// zeros; the sieve skips those lanes by row number.
     blocks: Vec<[f32; SIEVE_LANES]>,
+    /// The squared norm of each f32 point, block by block (`norms[b]`
+    /// for the points of block b), as [`rounded_norm2`] computes it; +∞
+    /// in the padding lanes.
+    norms: Vec<[f32; SIEVE_LANES]>,
     /// The largest squared norm of a training point: the sieve's error
     /// bound grows with it.
     max_norm2: f64,
@@ -202,8 +208,10 @@ pub struct ScanScratch {
     best: Vec<f64>,
     /// The k smallest f32 squared distances of each sieved query.
     rough: Vec<f32>,
-    /// The sieved queries rounded to f32.
+    /// The sieved queries rounded to f32 and multiplied by −2 (exact).
     queries: Vec<[f32; TREE_DIM]>,
+    /// Their squared norms by [`rounded_norm2`].
+    query_norms: Vec<f32>,
     /// Their error margins.
     margins: Vec<f64>,
     /// Where each sieved query sits among the caller's points.
@@ -230,13 +238,15 @@ impl NeighbourIndex {
         }
         let tree = Tree::build(&points, dims)?;
         let n_blocks = points.len().div_ceil(SIEVE_LANES);
-        let mut blocks = vec![[f32::INFINITY; SIEVE_LANES]; n_blocks * dims];
+        let mut blocks = vec![[0.0f32; SIEVE_LANES]; n_blocks * dims];
+        let mut norms = vec![[f32::INFINITY; SIEVE_LANES]; n_blocks];
         let mut rows = Vec::with_capacity(points.len() * dims);
         for (i, point) in points.iter().enumerate() {
             let (b, lane) = (i / SIEVE_LANES, i % SIEVE_LANES);
             for (j, &v) in point[..dims].iter().enumerate() {
                 blocks[b * dims + j][lane] = v as f32;
             }
+            norms[b][lane] = rounded_norm2(&point[..dims]);
             rows.extend_from_slice(&point[..dims]);
         }
         let max_norm2 = points
@@ -250,6 +260,7 @@ impl NeighbourIndex {
             dims,
             rows,
             blocks,
+            norms,
             max_norm2,
             sieve_fits,
         })
@@ -312,6 +323,7 @@ impl NeighbourIndex {
             best,
             rough,
             queries,
+            query_norms,
             margins,
             sieved,
             found,
@@ -319,14 +331,16 @@ impl NeighbourIndex {
         best.clear();
         best.resize(points.len() * k, f64::INFINITY);
         queries.clear();
+        query_norms.clear();
         margins.clear();
         sieved.clear();
         for (at, point) in points.iter().enumerate() {
             let point = &point[..self.dims];
             if self.sieve_fits && point.iter().all(|v| v.abs() <= SIEVE_MAX_ABS) {
                 queries.push(std::array::from_fn(|j| {
-                    point.get(j).map_or(0.0, |&v| v as f32)
+                    point.get(j).map_or(0.0, |&v| -2.0 * v as f32)
                 }));
+                query_norms.push(rounded_norm2(point));
                 margins.push(self.sieve_margin(point));
                 sieved.push(at);
             }
@@ -339,11 +353,17 @@ impl NeighbourIndex {
         rough.resize(sieved.len() * k, f32::INFINITY);
         let sieve = Sieve {
             blocks: &self.blocks,
+            norms: &self.norms,
             dims: self.dims,
             n: self.n,
             k,
         };
-        kernel.sieve(&sieve, queries, margins, rough, &mut found[..sieved.len()]);
+        let queries = Queries {
+            scaled: queries,
+            norms: query_norms,
+            margins,
+        };
+        kernel.sieve(&sieve, queries, rough, &mut found[..sieved.len()]);
 
         let mut next = sieved.iter().enumerate().peekable();
         for (at, (point, run)) in points.iter().zip(best.chunks_exact_mut(k)).enumerate() {
@@ -385,21 +405,34 @@ impl NeighbourIndex {
     /// A bound on |d̃ − d|, where d is a squared distance from the query
     /// `q` to any training point t and d̃ the sieve's f32 value of it.
     ///
+    /// The sieve computes d̃ = fl(‖t̂‖² + ‖q̂‖²) + Σⱼ t̂ⱼ·(−2q̂ⱼ), summed in
+    /// f32 in dimension order, where t̂ and q̂ are the points rounded to
+    /// f32 and each norm is summed in f64 from them and rounded to f32
+    /// once ([`rounded_norm2`]); −2q̂ⱼ is exact.
+    ///
     /// The bound (standard floating-point error analysis, as in Higham,
     /// *Accuracy and Stability of Numerical Algorithms*, 2nd ed., §2.2 and
     /// §3.1, section numbers from memory; u = 2⁻²⁴ is the unit roundoff of
-    /// f32): rounding tⱼ and qⱼ to f32 and subtracting leaves the
-    /// difference aⱼ = tⱼ − qⱼ off by at most eⱼ ≤ 2u·sⱼ·(1 + u),
-    /// sⱼ = |tⱼ| + |qⱼ|; its square is then off
-    /// by at most eⱼ(2sⱼ + eⱼ) ≤ 4.01u·sⱼ²; squaring and summing p terms
-    /// in f32 adds at most γₚ₊₁·Σ ãⱼ² ≤ 1.01(p + 1)u·Σ sⱼ². So
-    /// |d̃ − d| ≤ (p + 6)u·Σ sⱼ² ≤ 2(p + 6)u(‖t‖² + ‖q‖²). A kernel that
-    /// adds each term by a fused multiply-add rounds once where this
-    /// counts two roundings, so the bound holds for it too. Below f32's
-    /// smallest normal number the relative bounds fail; each of the p
-    /// terms then loses less than that number, which the last term adds.
-    /// The test `the_sieve_error_stays_within_its_proven_bound` checks
-    /// the bound against f64 arithmetic.
+    /// f32; sⱼ = |tⱼ| + |qⱼ|):
+    /// - rounding the points moves each difference aⱼ = tⱼ − qⱼ by at
+    ///   most u·sⱼ, so ‖t̂ − q̂‖² is within (2 + u)u·Σ sⱼ² of d;
+    /// - each rounded norm is within 1.01u of ‖t̂‖² or ‖q̂‖², and their sum
+    ///   rounds once more: 2.01u(‖t̂‖² + ‖q̂‖²) at most;
+    /// - adding the p products to that start, each by a fused
+    ///   multiply-add or by a rounded product and a rounded sum, adds at
+    ///   most γₚ₊₂ times the start plus Σ 2|t̂ⱼq̂ⱼ| ≤ ‖t̂‖² + ‖q̂‖², that is
+    ///   2.01(p + 2)u(‖t̂‖² + ‖q̂‖²).
+    ///
+    /// With Σ sⱼ² ≤ 2(‖t‖² + ‖q‖²) and ‖t̂‖² ≤ (1 + u)²‖t‖², that is
+    /// |d̃ − d| ≤ (2.01p + 10.1)u(‖t‖² + ‖q‖²), inside the 2(p + 6)u(‖t‖² +
+    /// ‖q‖²) used here (which also held for the difference form the
+    /// sieve computed before). Below f32's smallest normal number the
+    /// relative bounds fail: a value rounded there is off by at most
+    /// 2⁻¹⁵⁰; where that matters against the spare 1.7u·(‖t‖² + ‖q‖²) the
+    /// coordinates are so small that all of it stays below the last term,
+    /// p times that number. The test
+    /// `the_sieve_error_stays_within_its_proven_bound` checks each kernel
+    /// against f64 arithmetic.
     fn sieve_error_bound(&self, q: &[f64]) -> f64 {
         let q_norm2: f64 = q.iter().map(|v| v * v).sum();
         let p = self.dims as f64;
@@ -476,9 +509,22 @@ fn keep_if_smaller<T: PartialOrd + Copy>(best: &mut [T], v: T) -> bool {
 /// What the sieve reads: the index's f32 blocks and the run length.
 struct Sieve<'a> {
     blocks: &'a [[f32; SIEVE_LANES]],
+    norms: &'a [[f32; SIEVE_LANES]],
     dims: usize,
     n: usize,
     k: usize,
+}
+
+/// The queries a sieve takes, one entry each.
+#[derive(Clone, Copy)]
+struct Queries<'a> {
+    /// The f32 query times −2.
+    scaled: &'a [[f32; TREE_DIM]],
+    /// Its squared norm by [`rounded_norm2`].
+    norms: &'a [f32],
+    /// How far above the k-th smallest f32 distance a row stays a
+    /// candidate ([`NeighbourIndex::sieve_margin`]).
+    margins: &'a [f64],
 }
 
 /// The sieve's kernels. Each keeps, per query, the `k` smallest f32
@@ -498,7 +544,7 @@ enum Kernel {
     #[cfg(target_arch = "x86_64")]
     Avx,
     Portable,
-    /// The AVX-512 kernel's code (four queries a pass, fused
+    /// The AVX-512 kernel's code (eight queries a pass, fused
     /// multiply-adds) without its instructions, so its grouping is tested
     /// on every CPU. Listed after `Portable`, so never detected.
     #[cfg(test)]
@@ -556,145 +602,314 @@ impl Kernel {
     fn sieve(
         self,
         sieve: &Sieve,
-        queries: &[[f32; TREE_DIM]],
-        margins: &[f64],
+        queries: Queries,
         rough: &mut [f32],
         found: &mut [Vec<(u32, f32)>],
     ) {
-        assert_eq!(
-            rough.len(),
-            queries.len() * sieve.k,
-            "sieve: one k-run per query"
-        );
-        assert_eq!(
-            found.len(),
-            queries.len(),
-            "sieve: one candidate list per query"
-        );
-        assert_eq!(margins.len(), queries.len(), "sieve: one margin per query");
+        let n = queries.scaled.len();
+        assert_eq!(rough.len(), n * sieve.k, "sieve: one k-run per query");
+        assert_eq!(found.len(), n, "sieve: one candidate list per query");
+        assert_eq!(queries.norms.len(), n, "sieve: one norm per query");
+        assert_eq!(queries.margins.len(), n, "sieve: one margin per query");
         match self {
             #[cfg(target_arch = "x86_64")]
             Kernel::Avx512 => {
                 assert!(self.supported(), "AVX-512F sieve on a CPU without it");
                 // SAFETY: the CPU supports AVX-512F, AVX2, FMA and F16C,
                 // checked just above.
-                unsafe { sieve_avx512(sieve, queries, margins, rough, found) }
+                unsafe { sieve_avx512(sieve, queries, rough, found) }
             }
             #[cfg(target_arch = "x86_64")]
             Kernel::AvxFma => {
                 assert!(self.supported(), "AVX and FMA sieve on a CPU without them");
                 // SAFETY: the CPU supports AVX and FMA, checked just above.
-                unsafe { sieve_avx_fma(sieve, queries, margins, rough, found) }
+                unsafe { sieve_avx_fma(sieve, queries, rough, found) }
             }
             #[cfg(target_arch = "x86_64")]
             Kernel::Avx => {
                 assert!(self.supported(), "AVX sieve on a CPU without it");
                 // SAFETY: the CPU supports AVX, checked just above.
-                unsafe { sieve_avx(sieve, queries, margins, rough, found) }
+                unsafe { sieve_avx(sieve, queries, rough, found) }
             }
             Kernel::Portable => {
-                sieve_queries::<QUERIES_PORTABLE, false>(sieve, queries, margins, rough, found)
+                sieve_queries::<Plain<false>, QUERIES_PORTABLE>(sieve, queries, rough, found)
             }
             #[cfg(test)]
             Kernel::PortableAsAvx512 => {
-                sieve_queries::<QUERIES_AVX512, true>(sieve, queries, margins, rough, found)
+                sieve_queries::<Plain<true>, QUERIES_AVX512>(sieve, queries, rough, found)
             }
         }
     }
 }
 
-/// The sieve compiled for AVX-512F with FMA, four queries a pass: one
-/// 16-wide register of running sums each. With eight, LLVM vectorised the
-/// loop over the queries instead of the lanes, with a gather and a scatter
-/// for every lane's sum (`vgatherqps`, `vscatterqps`; six did the same),
-/// and the batched scan ran four to six times slower than one query at a
-/// time (domain bench, 2-vCPU Xeon with AVX-512). Four keeps the lanes in
-/// registers, and ran faster than eight with the loop over queries put
-/// outside the loop over dimensions, which also avoided the gathers: 4.7-5.1
-/// against 5.8-7.2 µs a query at 10 components.
+/// The sieve in AVX-512F intrinsics, eight queries a pass: one 16-wide
+/// register of running sums each.
+///
+/// Why intrinsics: written as plain loops over arrays, the same pass was
+/// compiled by LLVM into code whose speed had nothing to do with the
+/// arithmetic. With eight queries it vectorised the loop over the queries
+/// instead of the lanes, a gather and a scatter for every lane's sum
+/// (`vgatherqps`, `vscatterqps`); with four queries and the norm-expanded
+/// distance it vectorised one query and did the other three lane by lane
+/// in scalar registers spilled to the stack. Both ran the batched scan
+/// four to six times slower than one query at a time (domain bench,
+/// 2-vCPU Xeon with AVX-512; machine code read with `objdump`).
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f,fma")]
-fn sieve_avx512(
-    sieve: &Sieve,
-    queries: &[[f32; TREE_DIM]],
-    margins: &[f64],
-    rough: &mut [f32],
-    found: &mut [Vec<(u32, f32)>],
-) {
-    sieve_queries::<QUERIES_AVX512, true>(sieve, queries, margins, rough, found);
+fn sieve_avx512(sieve: &Sieve, queries: Queries, rough: &mut [f32], found: &mut [Vec<(u32, f32)>]) {
+    sieve_queries::<x86::Zmm, QUERIES_AVX512>(sieve, queries, rough, found);
 }
 
-/// The sieve compiled for AVX, four queries a pass (eight 8-wide running
-/// sums).
+/// The sieve in AVX intrinsics, four queries a pass (two 8-wide registers
+/// of running sums each), multiply and add rounded apart.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx")]
-fn sieve_avx(
-    sieve: &Sieve,
-    queries: &[[f32; TREE_DIM]],
-    margins: &[f64],
-    rough: &mut [f32],
-    found: &mut [Vec<(u32, f32)>],
-) {
-    sieve_queries::<QUERIES_AVX, false>(sieve, queries, margins, rough, found);
+fn sieve_avx(sieve: &Sieve, queries: Queries, rough: &mut [f32], found: &mut [Vec<(u32, f32)>]) {
+    sieve_queries::<x86::Ymm2<false>, QUERIES_AVX>(sieve, queries, rough, found);
 }
 
-/// The sieve compiled for AVX with fused multiply-add: each lane's term
-/// is one subtraction and one FMA instead of three operations.
+/// The sieve in AVX intrinsics with fused multiply-adds.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx,fma")]
 fn sieve_avx_fma(
     sieve: &Sieve,
-    queries: &[[f32; TREE_DIM]],
-    margins: &[f64],
+    queries: Queries,
     rough: &mut [f32],
     found: &mut [Vec<(u32, f32)>],
 ) {
-    sieve_queries::<QUERIES_AVX, true>(sieve, queries, margins, rough, found);
+    sieve_queries::<x86::Ymm2<true>, QUERIES_AVX>(sieve, queries, rough, found);
 }
 
-const QUERIES_AVX512: usize = 4;
+/// Eight and four queries a pass measured the same within the noise
+/// (domain bench, 10 components: 3.4–3.7 against 2.9–3.8 µs a query);
+/// eight is one pass for each eight-row share of a batch the domain guard
+/// hands a worker.
+const QUERIES_AVX512: usize = 8;
 const QUERIES_AVX: usize = 4;
 const QUERIES_PORTABLE: usize = 2;
+
+/// The sixteen running sums of one block of training points, held in a
+/// kernel's registers: the sieve pass is written once over this.
+///
+/// # Safety
+/// An implementation may use instructions the CPU must have; its methods
+/// are only called from a sieve kernel whose `#[target_feature]`s include
+/// them, and [`Kernel::sieve`] checks the CPU before it calls one.
+unsafe trait Lanes: Copy {
+    fn load(values: &[f32; SIEVE_LANES]) -> Self;
+    fn splat(value: f32) -> Self;
+    fn add(self, other: Self) -> Self;
+    /// `self + a·b`, fused into one rounding where the kernel has FMA.
+    fn add_product(self, a: Self, b: Self) -> Self;
+    /// A bit per lane (lane i is bit i) whose sum is at or below `bound`.
+    fn at_or_below(self, bound: f32) -> u32;
+    fn to_array(self) -> [f32; SIEVE_LANES];
+}
+
+/// The portable lanes: plain arrays, fused or not by `FMA`.
+#[derive(Clone, Copy)]
+struct Plain<const FMA: bool>([f32; SIEVE_LANES]);
+
+// SAFETY: plain arithmetic, no instruction beyond the baseline.
+unsafe impl<const FMA: bool> Lanes for Plain<FMA> {
+    #[inline(always)]
+    fn load(values: &[f32; SIEVE_LANES]) -> Self {
+        Plain(*values)
+    }
+    #[inline(always)]
+    fn splat(value: f32) -> Self {
+        Plain([value; SIEVE_LANES])
+    }
+    #[inline(always)]
+    fn add(self, other: Self) -> Self {
+        Plain(std::array::from_fn(|i| self.0[i] + other.0[i]))
+    }
+    #[inline(always)]
+    fn add_product(self, a: Self, b: Self) -> Self {
+        // Only where the CPU has FMA: elsewhere `mul_add` is a slow
+        // library call.
+        Plain(std::array::from_fn(|i| {
+            if FMA {
+                a.0[i].mul_add(b.0[i], self.0[i])
+            } else {
+                self.0[i] + a.0[i] * b.0[i]
+            }
+        }))
+    }
+    #[inline(always)]
+    fn at_or_below(self, bound: f32) -> u32 {
+        self.0
+            .iter()
+            .enumerate()
+            .fold(0, |bits, (lane, &v)| bits | (u32::from(v <= bound) << lane))
+    }
+    #[inline(always)]
+    fn to_array(self) -> [f32; SIEVE_LANES] {
+        self.0
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+mod x86 {
+    use super::{Lanes, SIEVE_LANES};
+    use std::arch::x86_64::*;
+
+    /// Sixteen lanes in one AVX-512 register.
+    #[derive(Clone, Copy)]
+    pub(super) struct Zmm(__m512);
+
+    // SAFETY: AVX-512F and FMA only, the features of `sieve_avx512`, the
+    // one kernel that uses this type. The loads and stores are unaligned
+    // and exactly 16 f32s, the size of the arrays they read and write.
+    unsafe impl Lanes for Zmm {
+        #[inline(always)]
+        fn load(values: &[f32; SIEVE_LANES]) -> Self {
+            Zmm(unsafe { _mm512_loadu_ps(values.as_ptr()) })
+        }
+        #[inline(always)]
+        fn splat(value: f32) -> Self {
+            Zmm(unsafe { _mm512_set1_ps(value) })
+        }
+        #[inline(always)]
+        fn add(self, other: Self) -> Self {
+            Zmm(unsafe { _mm512_add_ps(self.0, other.0) })
+        }
+        #[inline(always)]
+        fn add_product(self, a: Self, b: Self) -> Self {
+            Zmm(unsafe { _mm512_fmadd_ps(a.0, b.0, self.0) })
+        }
+        #[inline(always)]
+        fn at_or_below(self, bound: f32) -> u32 {
+            u32::from(unsafe { _mm512_cmp_ps_mask::<_CMP_LE_OQ>(self.0, _mm512_set1_ps(bound)) })
+        }
+        #[inline(always)]
+        fn to_array(self) -> [f32; SIEVE_LANES] {
+            let mut out = [0.0; SIEVE_LANES];
+            unsafe { _mm512_storeu_ps(out.as_mut_ptr(), self.0) };
+            out
+        }
+    }
+
+    /// Sixteen lanes in two AVX registers, fused multiply-adds by `FMA`.
+    #[derive(Clone, Copy)]
+    pub(super) struct Ymm2<const FMA: bool>(__m256, __m256);
+
+    // SAFETY: AVX, and FMA only when `FMA` is set: `sieve_avx` uses
+    // `Ymm2<false>` and `sieve_avx_fma` `Ymm2<true>`. The loads and stores
+    // are unaligned and 8 f32s at offsets 0 and 8 of 16-f32 arrays.
+    unsafe impl<const FMA: bool> Lanes for Ymm2<FMA> {
+        #[inline(always)]
+        fn load(values: &[f32; SIEVE_LANES]) -> Self {
+            let p = values.as_ptr();
+            unsafe { Ymm2(_mm256_loadu_ps(p), _mm256_loadu_ps(p.add(8))) }
+        }
+        #[inline(always)]
+        fn splat(value: f32) -> Self {
+            let v = unsafe { _mm256_set1_ps(value) };
+            Ymm2(v, v)
+        }
+        #[inline(always)]
+        fn add(self, other: Self) -> Self {
+            unsafe {
+                Ymm2(
+                    _mm256_add_ps(self.0, other.0),
+                    _mm256_add_ps(self.1, other.1),
+                )
+            }
+        }
+        #[inline(always)]
+        fn add_product(self, a: Self, b: Self) -> Self {
+            unsafe {
+                if FMA {
+                    Ymm2(
+                        _mm256_fmadd_ps(a.0, b.0, self.0),
+                        _mm256_fmadd_ps(a.1, b.1, self.1),
+                    )
+                } else {
+                    Ymm2(
+                        _mm256_add_ps(self.0, _mm256_mul_ps(a.0, b.0)),
+                        _mm256_add_ps(self.1, _mm256_mul_ps(a.1, b.1)),
+                    )
+                }
+            }
+        }
+        #[inline(always)]
+        fn at_or_below(self, bound: f32) -> u32 {
+            unsafe {
+                let b = _mm256_set1_ps(bound);
+                let lo = _mm256_movemask_ps(_mm256_cmp_ps::<_CMP_LE_OQ>(self.0, b)) as u32;
+                let hi = _mm256_movemask_ps(_mm256_cmp_ps::<_CMP_LE_OQ>(self.1, b)) as u32;
+                lo | (hi << 8)
+            }
+        }
+        #[inline(always)]
+        fn to_array(self) -> [f32; SIEVE_LANES] {
+            let mut out = [0.0; SIEVE_LANES];
+            let p = out.as_mut_ptr();
+            unsafe {
+                _mm256_storeu_ps(p, self.0);
+                _mm256_storeu_ps(p.add(8), self.1);
+            }
+            out
+        }
+    }
+}
 
 /// The sieve, `Q` queries a pass over the blocks, then the queries left
 /// over one a pass.
 #[inline(always)]
-fn sieve_queries<const Q: usize, const FMA: bool>(
+fn sieve_queries<L: Lanes, const Q: usize>(
     sieve: &Sieve,
-    queries: &[[f32; TREE_DIM]],
-    margins: &[f64],
+    queries: Queries,
     rough: &mut [f32],
     found: &mut [Vec<(u32, f32)>],
 ) {
     let k = sieve.k;
-    let (groups, rest) = queries.as_chunks::<Q>();
+    let (groups, rest) = queries.scaled.as_chunks::<Q>();
     let grouped = groups.len() * Q;
     let (rough_grouped, rough_rest) = rough.split_at_mut(grouped * k);
     let (found_grouped, found_rest) = found.split_at_mut(grouped);
-    let (margins_grouped, margins_rest) = margins.split_at(grouped);
-    for (((group, rough), found), margins) in groups
+    for (g, ((group, rough), found)) in groups
         .iter()
         .zip(rough_grouped.chunks_exact_mut(Q * k))
         .zip(found_grouped.chunks_exact_mut(Q))
-        .zip(margins_grouped.chunks_exact(Q))
+        .enumerate()
     {
-        sieve_pass::<Q, FMA>(sieve, group, margins, rough, found);
+        let norms = std::array::from_fn(|q| queries.norms[g * Q + q]);
+        let margins = &queries.margins[g * Q..(g + 1) * Q];
+        sieve_pass::<L, Q>(sieve, group, norms, margins, rough, found);
     }
-    for (((query, rough), found), margin) in rest
+    for (i, ((query, rough), found)) in rest
         .iter()
         .zip(rough_rest.chunks_exact_mut(k))
         .zip(found_rest.chunks_exact_mut(1))
-        .zip(margins_rest.chunks_exact(1))
+        .enumerate()
     {
-        sieve_pass::<1, FMA>(sieve, std::array::from_ref(query), margin, rough, found);
+        let (norm, margin) = (
+            queries.norms[grouped + i],
+            &queries.margins[grouped + i..][..1],
+        );
+        sieve_pass::<L, 1>(
+            sieve,
+            std::array::from_ref(query),
+            [norm],
+            margin,
+            rough,
+            found,
+        );
     }
 }
 
-/// One pass over the blocks for `Q` queries.
+/// One pass over the blocks for `Q` queries. Each lane's f32 squared
+/// distance is the expansion ‖t‖² + ‖q‖² + Σⱼ tⱼ·(−2qⱼ): one multiply-add
+/// a dimension, where the difference form (tⱼ − qⱼ)² takes a subtraction
+/// as well. Its error is within the same bound
+/// ([`NeighbourIndex::sieve_error_bound`]).
 #[inline(always)]
-fn sieve_pass<const Q: usize, const FMA: bool>(
+fn sieve_pass<L: Lanes, const Q: usize>(
     sieve: &Sieve,
     queries: &[[f32; TREE_DIM]; Q],
+    norms: [f32; Q],
     margins: &[f64],
     rough: &mut [f32],
     found: &mut [Vec<(u32, f32)>],
@@ -704,58 +919,76 @@ fn sieve_pass<const Q: usize, const FMA: bool>(
     // so far plus the margin, rounded up. It only falls as the pass goes
     // on, so every row within the final bound was taken when it was seen.
     let mut bounds = [f32::INFINITY; Q];
-    for (b, block) in sieve.blocks.chunks_exact(sieve.dims).enumerate() {
-        let mut acc = [[0.0f32; SIEVE_LANES]; Q];
+    for (b, (block, block_norms)) in sieve
+        .blocks
+        .chunks_exact(sieve.dims)
+        .zip(sieve.norms)
+        .enumerate()
+    {
+        let start = L::load(block_norms);
+        let mut acc: [L; Q] = std::array::from_fn(|q| start.add(L::splat(norms[q])));
         for (j, coords) in block.iter().enumerate() {
+            let t = L::load(coords);
             for (acc, query) in acc.iter_mut().zip(queries) {
-                add_squares::<FMA>(acc, coords, query[j]);
+                *acc = acc.add_product(t, L::splat(query[j]));
             }
         }
+        // Most blocks hold no candidate: one compare a query.
         for (q, acc) in acc.iter().enumerate() {
-            // Most blocks hold no candidate: one pass of comparisons,
-            // without the early exit of `any`, so it compiles to a few
-            // vector compares rather than a branch per lane.
-            let bound = bounds[q];
-            if !acc.iter().fold(false, |hit, &v| hit | (v <= bound)) {
-                continue;
-            }
-            // Then a bit per lane, and a visit to the lanes that passed
-            // only. With one query a pass, taking the bits lane by lane
-            // changed how LLVM compiled the whole pass and made it about
-            // 30% slower (domain bench), so every lane is visited instead.
-            let mut hits = if Q == 1 {
-                u32::MAX >> (32 - SIEVE_LANES)
-            } else {
-                acc.iter().enumerate().fold(0u32, |bits, (lane, &v)| {
-                    bits | (u32::from(v <= bound) << lane)
-                })
-            };
-            let run = &mut rough[q * k..(q + 1) * k];
-            while hits != 0 {
-                let lane = hits.trailing_zeros() as usize;
-                hits &= hits - 1;
-                let (row, v) = (b * SIEVE_LANES + lane, acc[lane]);
-                // The bound may have fallen since the bits were taken.
-                if v <= bounds[q] && row < sieve.n {
-                    found[q].push((row as u32, v));
-                    if keep_if_smaller(run, v) {
-                        bounds[q] = round_up_f32(f64::from(run[k - 1]) + margins[q]);
-                    }
-                }
+            let hits = acc.at_or_below(bounds[q]);
+            if hits != 0 {
+                take_hits(
+                    &acc.to_array(),
+                    hits,
+                    b * SIEVE_LANES,
+                    sieve.n,
+                    (&mut bounds[q], margins[q]),
+                    &mut rough[q * k..(q + 1) * k],
+                    &mut found[q],
+                );
             }
         }
     }
 }
 
-/// One dimension's term of every lane's f32 squared distance.
+/// The lanes of one block's sums whose bit is set in `hits`: each still
+/// within the query's bound (it may have fallen since the bits were
+/// taken) and a real row (below `n`) becomes a candidate, joins the run of
+/// the k smallest if it is smaller than the largest there, and then
+/// lowers the bound to the new k-th smallest plus the margin.
 #[inline(always)]
-fn add_squares<const FMA: bool>(acc: &mut [f32; SIEVE_LANES], coords: &[f32; SIEVE_LANES], q: f32) {
-    for (a, &t) in acc.iter_mut().zip(coords) {
-        let d = t - q;
-        // Only where the CPU has FMA: elsewhere `mul_add` is a slow
-        // library call.
-        *a = if FMA { d.mul_add(d, *a) } else { *a + d * d };
+fn take_hits(
+    lanes: &[f32; SIEVE_LANES],
+    mut hits: u32,
+    first_row: usize,
+    n: usize,
+    (bound, margin): (&mut f32, f64),
+    run: &mut [f32],
+    found: &mut Vec<(u32, f32)>,
+) {
+    let k = run.len();
+    while hits != 0 {
+        let lane = hits.trailing_zeros() as usize;
+        hits &= hits - 1;
+        let (row, v) = (first_row + lane, lanes[lane]);
+        if v <= *bound && row < n {
+            found.push((row as u32, v));
+            if keep_if_smaller(run, v) {
+                *bound = round_up_f32(f64::from(run[k - 1]) + margin);
+            }
+        }
     }
+}
+
+/// The squared norm of a point rounded to f32, as the sieve's
+/// expansion adds it: the f32 coordinates squared and summed in f64,
+/// then rounded to f32.
+fn rounded_norm2(point: &[f64]) -> f32 {
+    point
+        .iter()
+        .map(|&v| f64::from(v as f32))
+        .map(|v| v * v)
+        .sum::<f64>() as f32
 }
 
 /// The smallest f32 at or above `x`.
@@ -876,6 +1109,8 @@ mod tests {
     #[test]
     fn the_sieve_error_stays_within_its_proven_bound() {
         let mut rng = Xoshiro256PlusPlus::seed_from_u64(12);
+        let kernels = kernels_here();
+        let mut scratch = ScanScratch::default();
         let mut tightest: f64 = 0.0;
         for case in 0..20_000 {
             let dims = 1 + case % TREE_DIM;
@@ -904,24 +1139,18 @@ mod tests {
                     .unwrap();
             let exact: f64 = t.iter().zip(&q).map(|(a, b)| (a - b) * (a - b)).sum();
             let bound = index.sieve_error_bound(&q);
-            // Both ways the kernels add a term: rounding the square and
-            // the sum each, or once by a fused multiply-add.
-            for fused in [false, true] {
-                let mut acc = [0.0f32; SIEVE_LANES];
-                for (&tj, &qj) in t.iter().zip(&q) {
-                    let coords = [tj as f32; SIEVE_LANES];
-                    if fused {
-                        add_squares::<true>(&mut acc, &coords, qj as f32);
-                    } else {
-                        add_squares::<false>(&mut acc, &coords, qj as f32);
-                    }
-                }
-                let error = (f64::from(acc[0]) - exact).abs();
+            // Each kernel this CPU runs, on the one row: the f32 distance
+            // it kept is its k = 1 run. The kernels add a term by rounding
+            // the product and the sum each, or once by a fused multiply-add.
+            let query = pad(ArrayView1::from(&q)).unwrap();
+            for &kernel in &kernels {
+                index.scan_mean_distances_by(kernel, &[query], 1, &mut scratch);
+                let rough = scratch.rough[0];
+                let error = (f64::from(rough) - exact).abs();
                 assert!(
                     error <= bound,
-                    "case {case} (dims {dims}, scale {scale:e}, fused {fused}): f32 {} against \
-                     {exact:e}, error {error:e} over the bound {bound:e}",
-                    acc[0]
+                    "case {case} (dims {dims}, scale {scale:e}, {kernel:?}): f32 {rough} \
+                     against {exact:e}, error {error:e} over the bound {bound:e}"
                 );
                 tightest = tightest.max(error / bound);
             }
