@@ -91,7 +91,7 @@ fn main() {
     let rss = server.stop();
     println!(
         "ridge: {rate:.0} candidates/s in batches of {BATCH} from {CLIENTS} clients \
-         (target ≥ 100,000; {cpu_us:.0} server CPU-µs per candidate); single-candidate unary: {} \
+         (target ≥ 100,000; {cpu_us:.1} server CPU-µs per candidate); single-candidate unary: {} \
          (target p99 < 2 ms; {unary_cpu_us:.0} server CPU-µs per call); server peak RSS {:.0} MiB",
         latency.summary(),
         rss as f64 / 1024.0
