@@ -13,6 +13,7 @@
 //! The scan first sieves in f32, twice the lanes of f64 a vector register,
 //! keeping as candidates the rows whose rough distance is within a proven
 //! error margin of the k-th smallest (the bound is derived at
+//! `NeighbourIndex::sieve_error_bound`, the margin at
 //! `NeighbourIndex::sieve_margin`). The rough distance is expanded as
 //! ‖t‖² + ‖q‖² − 2t·q, one multiply-add a dimension, with the norms
 //! computed once per training row and once per query. It then computes each candidate's
@@ -165,9 +166,10 @@ const SCAN_FROM_DIMS: usize = 10;
 /// register per query) while the block's coordinates stream past.
 const SIEVE_LANES: usize = 16;
 
-/// The sieve computes in f32 only where every coordinate, difference and
-/// square stays far inside f32's range (about 3.4e38): 16 squares of
-/// differences below 2e18 sum to under 7e37. A query or an index with a
+/// The sieve computes in f32 only where every coordinate, product and
+/// norm stays far inside f32's range (about 3.4e38): with coordinates
+/// below 1e18, a norm of 16 of them is under 1.6e37 and the expansion's
+/// partial sums stay under 7e37. A query or an index with a
 /// coordinate beyond this goes to the exact scan of every row.
 const SIEVE_MAX_ABS: f64 = 1e18;
 
@@ -544,9 +546,10 @@ enum Kernel {
     #[cfg(target_arch = "x86_64")]
     Avx,
     Portable,
-    /// The AVX-512 kernel's code (eight queries a pass, fused
-    /// multiply-adds) without its instructions, so its grouping is tested
-    /// on every CPU. Listed after `Portable`, so never detected.
+    /// The AVX-512 kernel's grouping (eight queries a pass, the rest
+    /// four, two and one) and rounding (fused multiply-adds) through the
+    /// same generic pass in portable lanes, so both are tested on every
+    /// CPU. Listed after `Portable`, so never detected.
     #[cfg(test)]
     PortableAsAvx512,
 }
@@ -631,13 +634,16 @@ impl Kernel {
                 // SAFETY: the CPU supports AVX, checked just above.
                 unsafe { sieve_avx(sieve, queries, rough, found) }
             }
-            Kernel::Portable => {
+            // SAFETY: the portable lanes use no instruction beyond the
+            // baseline.
+            Kernel::Portable => unsafe {
                 sieve_queries::<Plain<false>, QUERIES_PORTABLE>(sieve, queries, rough, found)
-            }
+            },
             #[cfg(test)]
-            Kernel::PortableAsAvx512 => {
+            // SAFETY: as for `Portable`.
+            Kernel::PortableAsAvx512 => unsafe {
                 sieve_queries::<Plain<true>, QUERIES_AVX512>(sieve, queries, rough, found)
-            }
+            },
         }
     }
 }
@@ -657,7 +663,9 @@ impl Kernel {
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f,fma")]
 fn sieve_avx512(sieve: &Sieve, queries: Queries, rough: &mut [f32], found: &mut [Vec<(u32, f32)>]) {
-    sieve_queries::<x86::Zmm, QUERIES_AVX512>(sieve, queries, rough, found);
+    // SAFETY: `Zmm` uses AVX-512F only, which this function's caller
+    // has checked the CPU for.
+    unsafe { sieve_queries::<x86::Zmm, QUERIES_AVX512>(sieve, queries, rough, found) }
 }
 
 /// The sieve in AVX intrinsics, four queries a pass (two 8-wide registers
@@ -665,7 +673,9 @@ fn sieve_avx512(sieve: &Sieve, queries: Queries, rough: &mut [f32], found: &mut 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx")]
 fn sieve_avx(sieve: &Sieve, queries: Queries, rough: &mut [f32], found: &mut [Vec<(u32, f32)>]) {
-    sieve_queries::<x86::Ymm2<false>, QUERIES_AVX>(sieve, queries, rough, found);
+    // SAFETY: `Ymm2<false>` uses AVX only, which this function's caller
+    // has checked the CPU for.
+    unsafe { sieve_queries::<x86::Ymm2<false>, QUERIES_AVX>(sieve, queries, rough, found) }
 }
 
 /// The sieve in AVX intrinsics with fused multiply-adds.
@@ -677,7 +687,9 @@ fn sieve_avx_fma(
     rough: &mut [f32],
     found: &mut [Vec<(u32, f32)>],
 ) {
-    sieve_queries::<x86::Ymm2<true>, QUERIES_AVX>(sieve, queries, rough, found);
+    // SAFETY: `Ymm2<true>` uses AVX and FMA only, which this function's
+    // caller has checked the CPU for.
+    unsafe { sieve_queries::<x86::Ymm2<true>, QUERIES_AVX>(sieve, queries, rough, found) }
 }
 
 /// Eight and four queries a pass measured the same within the noise
@@ -691,13 +703,21 @@ const QUERIES_PORTABLE: usize = 2;
 /// The sixteen running sums of one block of training points, held in a
 /// kernel's registers: the sieve pass is written once over this.
 ///
+/// A value is proof that the CPU has the instructions the type uses:
+/// the only ways to make one, [`Lanes::load`] and [`Lanes::splat`], are
+/// `unsafe` with that precondition, so the other methods can be safe.
+///
 /// # Safety
-/// An implementation may use instructions the CPU must have; its methods
-/// are only called from a sieve kernel whose `#[target_feature]`s include
-/// them, and [`Kernel::sieve`] checks the CPU before it calls one.
+/// An implementation must give no other way to make a value (no public
+/// field, no safe constructor), and its methods may use only the
+/// instructions its documentation names.
 unsafe trait Lanes: Copy {
-    fn load(values: &[f32; SIEVE_LANES]) -> Self;
-    fn splat(value: f32) -> Self;
+    /// # Safety
+    /// The CPU has every instruction the implementation uses.
+    unsafe fn load(values: &[f32; SIEVE_LANES]) -> Self;
+    /// # Safety
+    /// As for [`Lanes::load`].
+    unsafe fn splat(value: f32) -> Self;
     fn add(self, other: Self) -> Self;
     /// `self + a·b`, fused into one rounding where the kernel has FMA.
     fn add_product(self, a: Self, b: Self) -> Self;
@@ -710,14 +730,15 @@ unsafe trait Lanes: Copy {
 #[derive(Clone, Copy)]
 struct Plain<const FMA: bool>([f32; SIEVE_LANES]);
 
-// SAFETY: plain arithmetic, no instruction beyond the baseline.
+// SAFETY: plain arithmetic, no instruction beyond the baseline; the
+// field is private to this module.
 unsafe impl<const FMA: bool> Lanes for Plain<FMA> {
     #[inline(always)]
-    fn load(values: &[f32; SIEVE_LANES]) -> Self {
+    unsafe fn load(values: &[f32; SIEVE_LANES]) -> Self {
         Plain(*values)
     }
     #[inline(always)]
-    fn splat(value: f32) -> Self {
+    unsafe fn splat(value: f32) -> Self {
         Plain([value; SIEVE_LANES])
     }
     #[inline(always)]
@@ -726,8 +747,9 @@ unsafe impl<const FMA: bool> Lanes for Plain<FMA> {
     }
     #[inline(always)]
     fn add_product(self, a: Self, b: Self) -> Self {
-        // Only where the CPU has FMA: elsewhere `mul_add` is a slow
-        // library call.
+        // Fused only in the test twin of the AVX-512 kernel: the
+        // portable kernel leaves `mul_add` out, since on a CPU without
+        // FMA it is a slow library call.
         Plain(std::array::from_fn(|i| {
             if FMA {
                 a.0[i].mul_add(b.0[i], self.0[i])
@@ -758,16 +780,18 @@ mod x86 {
     #[derive(Clone, Copy)]
     pub(super) struct Zmm(__m512);
 
-    // SAFETY: AVX-512F and FMA only, the features of `sieve_avx512`, the
-    // one kernel that uses this type. The loads and stores are unaligned
-    // and exactly 16 f32s, the size of the arrays they read and write.
+    // SAFETY: AVX-512F only (its fused multiply-add included); the field
+    // is private to this module. The loads and stores are unaligned and
+    // exactly 16 f32s, the size of the arrays they read and write. The
+    // safe methods run only on a value `load` or `splat` made, whose
+    // callers promised the CPU has AVX-512F.
     unsafe impl Lanes for Zmm {
         #[inline(always)]
-        fn load(values: &[f32; SIEVE_LANES]) -> Self {
+        unsafe fn load(values: &[f32; SIEVE_LANES]) -> Self {
             Zmm(unsafe { _mm512_loadu_ps(values.as_ptr()) })
         }
         #[inline(always)]
-        fn splat(value: f32) -> Self {
+        unsafe fn splat(value: f32) -> Self {
             Zmm(unsafe { _mm512_set1_ps(value) })
         }
         #[inline(always)]
@@ -794,17 +818,19 @@ mod x86 {
     #[derive(Clone, Copy)]
     pub(super) struct Ymm2<const FMA: bool>(__m256, __m256);
 
-    // SAFETY: AVX, and FMA only when `FMA` is set: `sieve_avx` uses
-    // `Ymm2<false>` and `sieve_avx_fma` `Ymm2<true>`. The loads and stores
-    // are unaligned and 8 f32s at offsets 0 and 8 of 16-f32 arrays.
+    // SAFETY: AVX, and FMA only when `FMA` is set; the fields are
+    // private to this module. The loads and stores are unaligned and 8
+    // f32s at offsets 0 and 8 of 16-f32 arrays. The safe methods run only
+    // on a value `load` or `splat` made, whose callers promised the CPU
+    // has those features.
     unsafe impl<const FMA: bool> Lanes for Ymm2<FMA> {
         #[inline(always)]
-        fn load(values: &[f32; SIEVE_LANES]) -> Self {
+        unsafe fn load(values: &[f32; SIEVE_LANES]) -> Self {
             let p = values.as_ptr();
             unsafe { Ymm2(_mm256_loadu_ps(p), _mm256_loadu_ps(p.add(8))) }
         }
         #[inline(always)]
-        fn splat(value: f32) -> Self {
+        unsafe fn splat(value: f32) -> Self {
             let v = unsafe { _mm256_set1_ps(value) };
             Ymm2(v, v)
         }
@@ -855,49 +881,61 @@ mod x86 {
     }
 }
 
-/// The sieve, `Q` queries a pass over the blocks, then the queries left
-/// over one a pass.
+/// The sieve, `Q` queries a pass over the blocks; the queries left over
+/// go four, two and one a pass (seven left take three passes, not
+/// seven).
+///
+/// # Safety
+/// The CPU has every instruction `L` uses.
 #[inline(always)]
-fn sieve_queries<L: Lanes, const Q: usize>(
+unsafe fn sieve_queries<L: Lanes, const Q: usize>(
     sieve: &Sieve,
     queries: Queries,
     rough: &mut [f32],
     found: &mut [Vec<(u32, f32)>],
 ) {
+    // SAFETY (every call): passed on from this function's caller.
+    let mut done = unsafe { sieve_groups::<L, Q>(sieve, queries, 0, rough, found) };
+    if Q > 4 {
+        done += unsafe { sieve_groups::<L, 4>(sieve, queries, done, rough, found) };
+    }
+    if Q > 2 {
+        done += unsafe { sieve_groups::<L, 2>(sieve, queries, done, rough, found) };
+    }
+    if Q > 1 {
+        done += unsafe { sieve_groups::<L, 1>(sieve, queries, done, rough, found) };
+    }
+    debug_assert_eq!(done, queries.scaled.len(), "sieve: a query left out");
+}
+
+/// One pass for each whole group of `Q` queries from `from` on; says how
+/// many queries that covered.
+///
+/// # Safety
+/// As for [`sieve_queries`].
+#[inline(always)]
+unsafe fn sieve_groups<L: Lanes, const Q: usize>(
+    sieve: &Sieve,
+    queries: Queries,
+    from: usize,
+    rough: &mut [f32],
+    found: &mut [Vec<(u32, f32)>],
+) -> usize {
     let k = sieve.k;
-    let (groups, rest) = queries.scaled.as_chunks::<Q>();
-    let grouped = groups.len() * Q;
-    let (rough_grouped, rough_rest) = rough.split_at_mut(grouped * k);
-    let (found_grouped, found_rest) = found.split_at_mut(grouped);
+    let (groups, _) = queries.scaled[from..].as_chunks::<Q>();
     for (g, ((group, rough), found)) in groups
         .iter()
-        .zip(rough_grouped.chunks_exact_mut(Q * k))
-        .zip(found_grouped.chunks_exact_mut(Q))
+        .zip(rough[from * k..].chunks_exact_mut(Q * k))
+        .zip(found[from..].chunks_exact_mut(Q))
         .enumerate()
     {
-        let norms = std::array::from_fn(|q| queries.norms[g * Q + q]);
-        let margins = &queries.margins[g * Q..(g + 1) * Q];
-        sieve_pass::<L, Q>(sieve, group, norms, margins, rough, found);
+        let first = from + g * Q;
+        let norms = std::array::from_fn(|q| queries.norms[first + q]);
+        let margins = &queries.margins[first..first + Q];
+        // SAFETY: passed on from this function's caller.
+        unsafe { sieve_pass::<L, Q>(sieve, group, norms, margins, rough, found) };
     }
-    for (i, ((query, rough), found)) in rest
-        .iter()
-        .zip(rough_rest.chunks_exact_mut(k))
-        .zip(found_rest.chunks_exact_mut(1))
-        .enumerate()
-    {
-        let (norm, margin) = (
-            queries.norms[grouped + i],
-            &queries.margins[grouped + i..][..1],
-        );
-        sieve_pass::<L, 1>(
-            sieve,
-            std::array::from_ref(query),
-            [norm],
-            margin,
-            rough,
-            found,
-        );
-    }
+    groups.len() * Q
 }
 
 /// One pass over the blocks for `Q` queries. Each lane's f32 squared
@@ -905,8 +943,11 @@ fn sieve_queries<L: Lanes, const Q: usize>(
 /// a dimension, where the difference form (tⱼ − qⱼ)² takes a subtraction
 /// as well. Its error is within the same bound
 /// ([`NeighbourIndex::sieve_error_bound`]).
+///
+/// # Safety
+/// As for [`sieve_queries`].
 #[inline(always)]
-fn sieve_pass<L: Lanes, const Q: usize>(
+unsafe fn sieve_pass<L: Lanes, const Q: usize>(
     sieve: &Sieve,
     queries: &[[f32; TREE_DIM]; Q],
     norms: [f32; Q],
@@ -925,12 +966,14 @@ fn sieve_pass<L: Lanes, const Q: usize>(
         .zip(sieve.norms)
         .enumerate()
     {
-        let start = L::load(block_norms);
-        let mut acc: [L; Q] = std::array::from_fn(|q| start.add(L::splat(norms[q])));
+        // SAFETY (every `load` and `splat`): passed on from this
+        // function's caller.
+        let start = unsafe { L::load(block_norms) };
+        let mut acc: [L; Q] = std::array::from_fn(|q| start.add(unsafe { L::splat(norms[q]) }));
         for (j, coords) in block.iter().enumerate() {
-            let t = L::load(coords);
+            let t = unsafe { L::load(coords) };
             for (acc, query) in acc.iter_mut().zip(queries) {
-                *acc = acc.add_product(t, L::splat(query[j]));
+                *acc = acc.add_product(t, unsafe { L::splat(query[j]) });
             }
         }
         // Most blocks hold no candidate: one compare a query.
