@@ -24,10 +24,11 @@ pub enum Error {
 /// the work is too small to share. The threshold is 16.8 million
 /// multiply-adds, about a millisecond on one core: below it a split
 /// saves less than its synchronisation costs whenever the service is
-/// busy with other requests, which is when speed matters. The serving
-/// path's products (a batch of 1,000 through a PCA of 16 components and
-/// the fold models, 3.2 million at most) all fall below; the fit's Gram
-/// matrices stay parallel.
+/// busy with other requests, which is when speed matters. In the serve
+/// bench (batches of 1,000, 200 descriptors, ridge) the products through
+/// the PCA and the fold models, 3.2 million at most, fall below; larger
+/// batches, wider descriptor sets, kernel ridge's kernel rows and the
+/// fit's Gram matrices pass it and stay parallel.
 const PARALLEL_FLOPS: usize = 1 << 24;
 
 fn par_for(flops: usize) -> Par {
