@@ -109,18 +109,23 @@ fn solve_by_cholesky(g: MatRef<'_, f64>, alphas: &[f64], b: MatRef<'_, f64>) -> 
         for i in 0..n {
             factor[(i, i)] += alpha;
         }
-        llt::factor::cholesky_in_place(
+        let factored = llt::factor::cholesky_in_place(
             factor.as_mut(),
             Default::default(),
             par,
             stack,
             Default::default(),
-        )
-        .ok()?;
+        );
+        if factored.is_err() {
+            linalg::clear_vector_upper(par);
+            return None;
+        }
         let mut x = out.subcols_mut(a * c, c);
         x.copy_from(b);
         llt::solve::solve_in_place_with_conj(factor.as_ref(), Conj::No, x, par, stack);
     }
+    // The scalar code from here on must not pay for faer's dirty registers.
+    linalg::clear_vector_upper(par);
     let finite = out.col_iter().all(|col| col.iter().all(|v| v.is_finite()));
     finite.then_some(out)
 }
@@ -166,6 +171,8 @@ fn solve_by_tridiagonal(
             stack,
         );
     }
+    // The tridiagonal solves below are scalar code.
+    linalg::clear_vector_upper(par);
 
     let mut out = Mat::<f64>::zeros(n, width);
     let mut spectral: Option<Spectral> = None;
@@ -200,6 +207,7 @@ fn solve_by_tridiagonal(
             stack,
         );
     }
+    linalg::clear_vector_upper(par);
     Ok(out)
 }
 
