@@ -246,18 +246,6 @@ pub fn sq_dists(
     d
 }
 
-/// The RBF kernel exp(−γ‖a − b‖²) between the rows of `a` and `b`.
-pub fn rbf_kernel(
-    a: ArrayView2<f64>,
-    b: ArrayView2<f64>,
-    gamma: f64,
-    b_norms: Option<&Array1<f64>>,
-) -> Array2<f64> {
-    let mut k = sq_dists(a, b, b_norms);
-    k.mapv_inplace(|d| (-gamma * d).exp());
-    k
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -114,11 +114,15 @@ fn principal_submatrix(k: &Array2<f64>, rows: &[usize]) -> Array2<f64> {
 /// dual coefficients, whose zeros outside a member drop its other rows, so
 /// one kernel row serves the full model and every fold model.
 ///
-/// Why not the per-block fused path [`linalg::rbf_kernel_times`]: in the
-/// same benchmark runs it reached 14% of the measured GEMM rate against 33%
-/// for this whole-block path (one parallel GEMM per 1,024-row chunk), on a
-/// heavily shared machine; it is kept, with its brute-force twin, until a
-/// quiet-machine A/B settles it.
+/// The kernel is formed per block of query rows by the fused path
+/// [`linalg::rbf_kernel_times`] (each block's kernel rows used while still
+/// in cache, blocks shared between the cores whole), not as the whole B × n
+/// block followed by one parallel product. The whole-block path had
+/// measured faster (33% of the GEMM rate against 14%) while faer's kernels
+/// left the vector registers dirty and every `exp` paid for it; with that
+/// cleared (`linalg::clear_vector_upper`), `cargo bench --bench compare`
+/// on 2026-12-05 gave 27,300 candidates/s and 50% of the GEMM rate for this
+/// path, against 12,100 and 25% for the whole block.
 pub(super) fn predict(
     gamma: f64,
     train: &Array2<f64>,
@@ -126,8 +130,8 @@ pub(super) fn predict(
     offset: &Array1<f64>,
     x: ArrayView2<f64>,
 ) -> Array2<f64> {
-    let k = linalg::rbf_kernel(x, train.view(), gamma, None);
-    let mut out = linalg::matmul(k.view(), dual.view());
+    let norms = linalg::row_sq_norms(train.view());
+    let mut out = linalg::rbf_kernel_times(x, train.view(), &norms, gamma, dual.view());
     out += &offset.view().insert_axis(Axis(0));
     out
 }
