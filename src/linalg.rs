@@ -40,8 +40,9 @@ fn par_for(flops: usize) -> Par {
 }
 
 /// Clears the upper halves of the vector registers after a faer call, on
-/// the calling thread and, when the call was shared out, on every thread of
-/// the rayon pool.
+/// the calling thread and, when the call was shared out from outside the
+/// rayon pool, on every thread of the pool (from a pool thread, on that
+/// thread alone: see below).
 ///
 /// faer's x86 GEMM micro-kernels are written in AVX and AVX-512 assembly and
 /// return without `vzeroupper`, leaving the registers' upper halves in use.
@@ -146,6 +147,25 @@ fn matmul_faer(a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Array2<f64> {
 /// A·B written into `out`, row-major m × n.
 fn matmul_into(a: MatRef<'_, f64>, b: MatRef<'_, f64>, out: &mut [f64], par: Par) {
     let (m, n) = (a.nrows(), b.ncols());
+    if m == 1 && a.ncols() > 0 {
+        // faer takes a matrix–vector route for a single row, which sums a
+        // long inner dimension in another order than its GEMM: a kernel
+        // ridge candidate scored alone, or left alone in the last block of
+        // a batch, got other last bits than in a batch. Two copies of the
+        // row take the GEMM route, whose rows do not depend on their
+        // neighbours (`a_row_does_not_depend_on_the_rows_around_it`).
+        let row: Vec<f64> = (0..a.ncols()).map(|j| a[(0, j)]).collect();
+        let twice = [row.as_slice(), row.as_slice()].concat();
+        let mut both = vec![0.0f64; 2 * n];
+        matmul_into(
+            MatRef::from_row_major_slice(&twice, 2, a.ncols()),
+            b,
+            &mut both,
+            par,
+        );
+        out[..n].copy_from_slice(&both[..n]);
+        return;
+    }
     // Written as the transpose (Cᵀ = Bᵀ·Aᵀ) into a column-major buffer, which
     // is exactly the row-major layout ndarray wants: no copy back.
     let ct = MatMut::from_column_major_slice_mut(out, n, m);
@@ -188,30 +208,44 @@ pub fn rbf_kernel_times(
         "rbf_kernel_times: one norm per row of B"
     );
     let (rows, n, m) = (a.nrows(), b.nrows(), c.ncols());
+    if n == 0 {
+        // No training rows: every kernel row is empty, every sum zero.
+        return Array2::zeros((rows, m));
+    }
+    // The same norms as `sq_dists`, so a kernel value has the bits of the
+    // one the fit computed for the same pair of rows.
+    let a_norms = row_sq_norms(a);
     let (a, b, c) = (
         a.as_standard_layout(),
         b.as_standard_layout(),
         c.as_standard_layout(),
     );
     let (a, bt, c) = (view(&a), view(&b).transpose(), view(&c));
-    let mut out = vec![0.0f64; rows * m];
-    out.par_chunks_mut(KERNEL_BLOCK_ROWS * m.max(1))
-        .enumerate()
-        .for_each_init(Vec::new, |kernel: &mut Vec<f64>, (block, out)| {
-            let start = block * KERNEL_BLOCK_ROWS;
-            let len = (rows - start).min(KERNEL_BLOCK_ROWS);
-            let a = a.subrows(start, len);
-            kernel.resize(len * n, 0.0);
-            matmul_into(a, bt, kernel, Par::Seq);
-            for (i, row) in kernel.chunks_exact_mut(n).enumerate() {
-                let ai: f64 = a.row(i).iter().map(|v| v * v).sum();
-                for (v, bj) in row.iter_mut().zip(b_norms.iter()) {
-                    *v = (-gamma * (ai + bj - 2.0 * *v).max(0.0)).exp();
-                }
+    let block = |kernel: &mut Vec<f64>, (index, out): (usize, &mut [f64])| {
+        let start = index * KERNEL_BLOCK_ROWS;
+        let len = (rows - start).min(KERNEL_BLOCK_ROWS);
+        kernel.resize(len * n, 0.0);
+        matmul_into(a.subrows(start, len), bt, kernel, Par::Seq);
+        for (i, row) in kernel.chunks_exact_mut(n).enumerate() {
+            let ai = a_norms[start + i];
+            for (v, bj) in row.iter_mut().zip(b_norms.iter()) {
+                *v = (-gamma * (ai + bj - 2.0 * *v).max(0.0)).exp();
             }
-            let k = MatRef::from_row_major_slice(kernel, len, n);
-            matmul_into(k, c, out, Par::Seq);
-        });
+        }
+        let k = MatRef::from_row_major_slice(kernel, len, n);
+        matmul_into(k, c, out, Par::Seq);
+    };
+    let mut out = vec![0.0f64; rows * m];
+    let chunk = KERNEL_BLOCK_ROWS * m.max(1);
+    if rows <= KERNEL_BLOCK_ROWS {
+        // One block (a single candidate, say): on the calling thread, not
+        // handed to the pool and queued behind other requests' blocks.
+        block(&mut Vec::new(), (0, &mut out));
+    } else {
+        out.par_chunks_mut(chunk)
+            .enumerate()
+            .for_each_init(Vec::new, block);
+    }
     Array2::from_shape_vec((rows, m), out).expect("buffer has rows·m elements")
 }
 
@@ -257,6 +291,58 @@ mod tests {
     fn random(rows: usize, cols: usize, seed: u64) -> Array2<f64> {
         let mut rng = Xoshiro256PlusPlus::seed_from_u64(seed);
         Array2::from_shape_fn((rows, cols), |_| rng.gen_range(-1.0..1.0))
+    }
+
+    /// A row's product, and its kernel ridge sum, have the same bits
+    /// whatever rows come with it: alone, first or last of a batch, or in a
+    /// last kernel block of one row. faer's one-row route summed a long
+    /// inner dimension in another order, so without the two-row detour in
+    /// `matmul_into` the single rows here differ (tried). The fused kernel
+    /// also has the bits of the kernel formed whole from `sq_dists`, as the
+    /// fit forms it.
+    #[test]
+    fn a_row_does_not_depend_on_the_rows_around_it() {
+        let same = |a: ArrayView2<f64>, b: ArrayView2<f64>| {
+            a.iter()
+                .zip(b.iter())
+                .all(|(x, y)| x.to_bits() == y.to_bits())
+        };
+        // Shapes of the serving path: descriptors times fold weights, the
+        // PCA, and the kernel block times the dual coefficients.
+        for (k, n) in [(200, 6), (200, 10), (5000, 6), (3, 2)] {
+            let w = random(k, n, 7);
+            let x = random(300, k, 8);
+            let whole = matmul(x.view(), w.view());
+            for rows in [1, 2, 3, 17, 129, 299] {
+                for start in [0, 300 - rows] {
+                    let part = x.slice(ndarray::s![start..start + rows, ..]);
+                    let p = matmul(part, w.view());
+                    let expected = whole.slice(ndarray::s![start..start + rows, ..]);
+                    assert!(
+                        same(p.view(), expected),
+                        "k {k}, n {n}, rows {start}..+{rows}"
+                    );
+                }
+            }
+        }
+        let (train, dual) = (random(2000, 50, 9), random(2000, 3, 10));
+        let norms = row_sq_norms(train.view());
+        let x = random(300, 50, 11);
+        let mut formed = sq_dists(x.view(), train.view(), Some(&norms));
+        formed.mapv_inplace(|d| (-0.02 * d).exp());
+        let whole = matmul(formed.view(), dual.view());
+        assert!(same(
+            rbf_kernel_times(x.view(), train.view(), &norms, 0.02, dual.view()).view(),
+            whole.view()
+        ));
+        for rows in [1, 2, 127, 128, 129, 257] {
+            for start in [0, 300 - rows] {
+                let part = x.slice(ndarray::s![start..start + rows, ..]);
+                let p = rbf_kernel_times(part, train.view(), &norms, 0.02, dual.view());
+                let expected = whole.slice(ndarray::s![start..start + rows, ..]);
+                assert!(same(p.view(), expected), "kernel rows {start}..+{rows}");
+            }
+        }
     }
 
     #[test]
