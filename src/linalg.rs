@@ -154,8 +154,7 @@ fn matmul_into(a: MatRef<'_, f64>, b: MatRef<'_, f64>, out: &mut [f64], par: Par
         // a batch, got other last bits than in a batch. Two copies of the
         // row take the GEMM route, whose rows do not depend on their
         // neighbours (`a_row_does_not_depend_on_the_rows_around_it`).
-        let row: Vec<f64> = (0..a.ncols()).map(|j| a[(0, j)]).collect();
-        let twice = [row.as_slice(), row.as_slice()].concat();
+        let twice: Vec<f64> = (0..2 * a.ncols()).map(|j| a[(0, j % a.ncols())]).collect();
         let mut both = vec![0.0f64; 2 * n];
         matmul_into(
             MatRef::from_row_major_slice(&twice, 2, a.ncols()),

@@ -214,6 +214,7 @@ fn save_predictor(p: &Predictor, arrays: &mut Arrays) -> serde_json::Value {
             train,
             dual,
             offset,
+            ..
         } => {
             put2(arrays, "predictor.train", train);
             put2(arrays, "predictor.dual", dual);
@@ -273,12 +274,7 @@ fn load_predictor(
                     )
                 },
             )?;
-            Predictor::Kernel {
-                gamma,
-                train,
-                dual,
-                offset,
-            }
+            Predictor::kernel(gamma, train, dual, offset)
         }
         "neighbours" => {
             let k = meta

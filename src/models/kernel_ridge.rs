@@ -91,12 +91,7 @@ pub(super) fn fit_members(
         }
         offset[m] = mean;
     }
-    Ok(Predictor::Kernel {
-        gamma,
-        train: x.to_owned(),
-        dual,
-        offset,
-    })
+    Ok(Predictor::kernel(gamma, x.to_owned(), dual, offset))
 }
 
 /// K[rows, rows], gathered row by row (each source row is contiguous).
@@ -126,12 +121,12 @@ fn principal_submatrix(k: &Array2<f64>, rows: &[usize]) -> Array2<f64> {
 pub(super) fn predict(
     gamma: f64,
     train: &Array2<f64>,
+    train_norms: &Array1<f64>,
     dual: &Array2<f64>,
     offset: &Array1<f64>,
     x: ArrayView2<f64>,
 ) -> Array2<f64> {
-    let norms = linalg::row_sq_norms(train.view());
-    let mut out = linalg::rbf_kernel_times(x, train.view(), &norms, gamma, dual.view());
+    let mut out = linalg::rbf_kernel_times(x, train.view(), train_norms, gamma, dual.view());
     out += &offset.view().insert_axis(Axis(0));
     out
 }

@@ -382,6 +382,7 @@ fn check_finds_predictors_whose_arrays_do_not_fit_together() {
         train,
         dual,
         offset,
+        ..
     } = fit_predictor(
         &Hyper::KernelRidge {
             gamma: 0.5,
@@ -394,20 +395,23 @@ fn check_finds_predictors_whose_arrays_do_not_fit_together() {
     else {
         panic!("kernel ridge fits a kernel predictor");
     };
-    let short = Predictor::Kernel {
+    let short = Predictor::kernel(
         gamma,
-        train: train.clone(),
-        dual: dual.slice(s![..11, ..]).to_owned(),
-        offset: offset.clone(),
-    };
+        train.clone(),
+        dual.slice(s![..11, ..]).to_owned(),
+        offset.clone(),
+    );
     assert!(matches!(short.check(), Err(Error::Shape { .. })));
-    let bad_gamma = Predictor::Kernel {
-        gamma: -1.0,
+    let bad_gamma = Predictor::kernel(-1.0, train.clone(), dual.clone(), offset.clone());
+    assert!(matches!(bad_gamma.check(), Err(Error::NotPositive { .. })));
+    let stale_norms = Predictor::Kernel {
+        gamma,
+        train_norms: ndarray::Array1::zeros(train.nrows() - 1),
         train,
         dual,
         offset,
     };
-    assert!(matches!(bad_gamma.check(), Err(Error::NotPositive { .. })));
+    assert!(matches!(stale_norms.check(), Err(Error::Shape { .. })));
     let lonely = Predictor::Neighbours {
         k: 3,
         train: x.clone(),
